@@ -1,0 +1,31 @@
+"""fieldplan: steer several small bodies with a few shared field inputs.
+
+Public surface (everything else may change):
+
+Units and data
+    to_si, Medium, water, air, Body, Shell, Workspace, rectangle, circle, polygon
+Actuator contract
+    Actuator, Channel, Primitive, FieldBasis, Segment, TAGS, load_actuator
+Schedules and limits
+    Schedule, HardwareLimits, ChannelLimit
+Simulation
+    Simulator, rollout, Rollout
+Errors
+    FieldplanError, UnitError, ActuatorError, WorkspaceError, LimitError, ScenarioError
+"""
+
+from .actuator import TAGS, Actuator, Channel, FieldBasis, Primitive, Segment
+from .body import Body, Shell
+from .errors import (ActuatorError, FieldplanError, LimitError, ScenarioError, UnitError,
+                     WorkspaceError)
+from .medium import Medium, air, water
+from .units import to_si
+from .workspace import Workspace, circle, polygon, rectangle
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "to_si", "Medium", "water", "air", "Body", "Shell", "Workspace", "rectangle", "circle", "polygon",
+    "Actuator", "Channel", "Primitive", "FieldBasis", "Segment", "TAGS",
+    "FieldplanError", "UnitError", "ActuatorError", "WorkspaceError", "LimitError", "ScenarioError",
+]
