@@ -179,7 +179,7 @@ class Workspace:
             d = q - xy[i]
             n = np.linalg.norm(d)
             xy[i] = q + (d / n) * 1e-9 * max(radius, 1e-6) if n > 0 else q
-                return xy, ~ok
+        return xy, ~ok
 
     def occupancy(self, resolution, radius=0.0):
         """Raster of free cells for a body of ``radius``.
