@@ -1,0 +1,287 @@
+"""The actuator contract suite, and small analytic actuators for tests and examples.
+
+:func:`check_actuator` is the one place that says what an actuator must do. Every built-in
+actuator runs it in ``tests/test_actuator_contract.py``; a user's plug-in runs it in theirs::
+
+    from fieldplan.testing import check_actuator
+    check_actuator(MyActuator(...), bodies=[my_bead], medium=fieldplan.water())
+"""
+
+from __future__ import annotations
+
+import pickle
+
+import numpy as np
+
+from .actuator import TAGS, Actuator, Channel, FieldBasis, Primitive
+from .errors import ActuatorError
+from .physics import drag_coefficient
+
+__all__ = ["check_actuator", "SourceArray"]
+
+
+class _Fail(AssertionError):
+    pass
+
+
+def _fail(check, actuator, message):
+    raise _Fail(f"check_actuator[{check}] {type(actuator).__name__}: {message}")
+
+
+def _random_inputs(actuator, rng, n):
+    chans = actuator.channels
+    out = []
+    prims = () if "affine_in_input" in actuator.tags else tuple(actuator.primitives())
+    for j in range(n):
+        if prims and any(c.values for c in chans):
+            out.append(np.asarray(prims[j % len(prims)].values))
+            continue
+        u = np.array([rng.uniform(c.lower, c.upper) for c in chans])
+        out.append(u)
+    return out
+
+
+def check_actuator(actuator, bodies, medium, points=None, rng=0, n_points=24, rtol=1e-7):
+    """Run the actuator contract suite; raise ``AssertionError`` naming the first failed check.
+
+    Parameters
+    ----------
+    actuator : Actuator
+        The model under test.
+    bodies : sequence of Body
+        Bodies the actuator claims to move (use several kinds to check heterogeneous handling).
+    medium : Medium
+    points : array_like, shape (n, 2), optional
+        Positions (m) to test at; default ``n_points`` random points inside ``actuator.extent``.
+    rng : int or numpy.random.Generator
+        Seed of the random inputs and points.
+    rtol : float
+        Relative tolerance of the consistency checks.
+
+    Checks
+    ------
+    channels
+        A non-empty tuple of :class:`Channel` with unique names.
+    tags
+        Only known tags (:data:`fieldplan.TAGS`).
+    shape_finite
+        ``velocity`` returns a finite float array of shape (n, 2).
+    vectorised
+        One call over all points equals one call per point.
+    affine_in_input (if tagged)
+        ``v(a u1 + (1 - a) u2) = a v(u1) + (1 - a) v(u2)``.
+    zero_idle (if tagged)
+        The idle input gives zero velocity.
+    primitives
+        Non-affine actuators have primitives; every primitive is a valid input; names unique.
+    basis
+        ``basis()`` agrees with ``velocity()`` for every field (linear: unit responses; timeshare:
+        primitive velocity minus idle velocity), and its predicted displacement matches.
+    bad_input
+        Wrong input length, NaN input, out-of-bounds input and malformed positions raise
+        :class:`ActuatorError`.
+    pickle
+        A pickled and restored actuator gives the same velocity (needed for process pools).
+
+    Examples
+    --------
+    >>> import fieldplan
+    >>> act = SourceArray([[0, 0], [1e-3, 0], [0, 1e-3]])
+    >>> bead = fieldplan.Body("bead", radius=2e-6, density=1100.0)
+    >>> check_actuator(act, [bead], fieldplan.water())
+    """
+    rng = np.random.default_rng(rng)
+    if not isinstance(actuator, Actuator):
+        _fail("type", actuator, "is not a subclass of fieldplan.Actuator.")
+    chans = actuator.channels
+    if not isinstance(chans, tuple) or not chans or not all(isinstance(c, Channel) for c in chans):
+        _fail("channels", actuator, f"channels must be a non-empty tuple of Channel, got {chans!r}.")
+    names = [c.name for c in chans]
+    if len(set(names)) != len(names):
+        _fail("channels", actuator, f"channel names are not unique: {names}.")
+    unknown = set(actuator.tags) - set(TAGS)
+    if unknown:
+        _fail("tags", actuator, f"unknown tags {sorted(unknown)}; known: {sorted(TAGS)}.")
+    bodies = list(bodies)
+    if not bodies:
+        _fail("bodies", actuator, "give at least one body to test with.")
+    if points is None:
+        if actuator.extent is None:
+            _fail("points", actuator, "has no extent; pass points=... to check_actuator.")
+        x0, x1, y0, y1 = actuator.extent
+        points = rng.uniform([x0, y0], [x1, y1], size=(n_points, 2))
+    xy = np.asarray(points, dtype=float)
+    affine = "affine_in_input" in actuator.tags
+
+    prims = tuple(actuator.primitives()) if not affine else ()
+    if not affine:
+        if not prims:
+            _fail("primitives", actuator, "is not tagged affine_in_input, so it needs primitives().")
+        pn = [p.name for p in prims]
+        if len(set(pn)) != len(pn):
+            _fail("primitives", actuator, "primitive names are not unique.")
+        for p in prims:
+            if not isinstance(p, Primitive):
+                _fail("primitives", actuator, f"{p!r} is not a Primitive.")
+            try:
+                actuator.check_input(p.values)
+            except ActuatorError as exc:
+                _fail("primitives", actuator, f"primitive {p.name!r} is not a valid input: {exc}")
+
+    inputs = _random_inputs(actuator, rng, 3)
+    for body in bodies:
+        for u in inputs:
+            v = actuator.velocity(body, medium, xy, u)
+            if not isinstance(v, np.ndarray) or v.shape != xy.shape or v.dtype.kind != "f":
+                _fail("shape_finite", actuator, f"velocity returned {type(v).__name__} shape "
+                      f"{getattr(v, 'shape', None)}, expected float ndarray {xy.shape}.")
+            if not np.all(np.isfinite(v)):
+                _fail("shape_finite", actuator, f"velocity is not finite for body {body.name!r}.")
+            single = np.vstack([actuator.velocity(body, medium, xy[i:i + 1], u) for i in range(len(xy))])
+            scale = max(np.max(np.abs(v)), 1e-300)
+            if not np.allclose(single, v, rtol=rtol, atol=rtol * scale):
+                _fail("vectorised", actuator, f"one call over {len(xy)} points differs from per-point calls "
+                      f"(max difference {np.max(np.abs(single - v)):.3g} m/s, body {body.name!r}).")
+        if affine:
+            u1, u2 = inputs[0], inputs[1]
+            a = 0.3
+            lhs = actuator.velocity(body, medium, xy, a * u1 + (1 - a) * u2)
+            rhs = a * actuator.velocity(body, medium, xy, u1) + (1 - a) * actuator.velocity(body, medium, xy, u2)
+            scale = max(np.max(np.abs(rhs)), 1e-300)
+            if not np.allclose(lhs, rhs, rtol=1e-6, atol=1e-6 * scale):
+                _fail("affine_in_input", actuator, f"declared affine, but velocity is not affine in u for "
+                      f"body {body.name!r} (max deviation {np.max(np.abs(lhs - rhs)) / scale:.3g} relative).")
+        if "zero_idle" in actuator.tags:
+            v0 = actuator.velocity(body, medium, xy, actuator.idle_input())
+            if np.max(np.abs(v0)) > 0:
+                _fail("zero_idle", actuator, f"declared zero_idle, but the idle input moves body {body.name!r} "
+                      f"at up to {np.max(np.abs(v0)):.3g} m/s.")
+
+    # basis consistent with velocity, for a mixed set of bodies at the first points
+    n = min(len(xy), 2 * len(bodies) + 1)
+    bl = [bodies[i % len(bodies)] for i in range(n)]
+    pos = xy[:n]
+    basis = actuator.basis(bl, medium, pos)
+    if not isinstance(basis, FieldBasis):
+        _fail("basis", actuator, f"basis() returned {type(basis).__name__}, not FieldBasis.")
+    if basis.fields.shape[1:] != (n, 2):
+        _fail("basis", actuator, f"basis fields have shape {basis.fields.shape}, expected (K, {n}, 2).")
+    if not np.all(np.isfinite(basis.fields)) or not np.all(np.isfinite(basis.drift)):
+        _fail("basis", actuator, "basis fields are not finite.")
+    if affine != (basis.mode == "linear"):
+        _fail("basis", actuator, f"tags say affine={affine} but basis mode is {basis.mode!r}.")
+    T = 0.7
+
+    def vel_all(u):
+        return np.vstack([actuator.velocity(b, medium, pos[i:i + 1], u) for i, b in enumerate(bl)])
+
+    if basis.mode == "linear":
+        u = inputs[0]
+        want = T * vel_all(u)
+        got = basis.displacement(u, T)
+        segs = basis.to_segments(u, T)
+        if len(segs) != 1 or not np.allclose(segs[0].values, u):
+            _fail("basis", actuator, "linear to_segments must give one segment holding the input.")
+    else:
+        w = rng.uniform(0, 1, basis.size)
+        w *= T / w.sum() * 0.8
+        got = basis.displacement(w, T)
+        want = (T - w.sum()) * vel_all(basis.idle)
+        for k, p in enumerate(basis.primitives):
+            want = want + w[k] * vel_all(p.values)
+        segs = basis.to_segments(w, T)
+        total = sum(s.duration for s in segs)
+        if not np.isclose(total, T, rtol=1e-9):
+            _fail("basis", actuator, f"to_segments covers {total} s of a {T} s period.")
+        for s in segs:
+            actuator.check_input(s.values)
+    scale = max(np.max(np.abs(want)), 1e-300)
+    if not np.allclose(got, want, rtol=rtol * 100, atol=1e-5 * scale):
+        _fail("basis", actuator, f"basis displacement differs from integrating velocity() "
+              f"(max relative deviation {np.max(np.abs(got - want)) / scale:.3g}).")
+
+    # bad input
+    body = bodies[0]
+    good = inputs[0]
+    bad_cases = {
+        "wrong input length": (xy, np.append(good, 0.0)),
+        "NaN input": (xy, np.where(np.arange(len(good)) == 0, np.nan, good)),
+        "out-of-bounds input": (xy, np.where(np.arange(len(good)) == 0,
+                                             chans[0].upper + 1.0 + abs(chans[0].upper), good)),
+        "positions of shape (n, 3)": (np.zeros((3, 3)), good),
+        "NaN position": (np.array([[np.nan, 0.0]]), good),
+    }
+    for what, (p, u) in bad_cases.items():
+        try:
+            actuator.velocity(body, medium, p, u)
+        except ActuatorError:
+            continue
+        except Exception as exc:  # noqa: BLE001 - we report what was raised instead
+            _fail("bad_input", actuator, f"{what} raised {type(exc).__name__} ({exc}), expected ActuatorError.")
+        _fail("bad_input", actuator, f"{what} was accepted; it must raise ActuatorError.")
+
+    # picklable (process pools for sweeps)
+    try:
+        clone = pickle.loads(pickle.dumps(actuator))
+    except Exception as exc:  # noqa: BLE001
+        _fail("pickle", actuator, f"cannot be pickled ({type(exc).__name__}: {exc}).")
+    a = actuator.velocity(body, medium, xy, good)
+    b = clone.velocity(body, medium, xy, good)
+    if not np.allclose(a, b, rtol=1e-12, atol=0):
+        _fail("pickle", actuator, "a pickled copy gives a different velocity.")
+
+
+class SourceArray(Actuator):
+    """Analytic test actuator: channel ``k`` pulls bodies toward point source ``k``.
+
+    The force of source ``k`` on a body at ``x`` is
+    ``u_k * force * core * (s_k - x) / (|s_k - x|^2 + core^2)`` — the shape of a softened
+    2-D point source, invented for tests and demos (not a model of real hardware). Velocity is
+    force over the Stokes/Faxen drag of the body, so bodies of different radius move at different
+    speeds. With ``affine=True`` the input enters linearly (tag ``affine_in_input``); with
+    ``affine=False`` it enters as ``u_k |u_k|`` and the planner must time-share primitives.
+
+    Parameters
+    ----------
+    sources : array_like, shape (K, 2)
+        Source positions, m.
+    force : float
+        Peak force scale, N, at unit input and distance ``core``.
+    core : float
+        Softening length, m (default: a tenth of the sources' spread).
+    bound : float
+        Channels are dimensionless in ``[-bound, bound]``.
+    affine : bool
+    extent : tuple, optional
+        (xmin, xmax, ymin, ymax) m; default the sources' bounding box.
+    """
+
+    def __init__(self, sources, force=1e-12, core=None, bound=1.0, affine=True, extent=None):
+        s = np.asarray(sources, dtype=float)
+        if s.ndim != 2 or s.shape[1] != 2 or len(s) == 0:
+            raise ActuatorError(f"SourceArray sources must have shape (K, 2), got {s.shape}.")
+        self.sources = s
+        self.force = float(force)
+        span = float(np.max(np.ptp(s, axis=0))) if len(s) > 1 else 1e-3
+        self.core = float(core) if core is not None else 0.1 * max(span, 1e-9)
+        if not self.core > 0:
+            raise ActuatorError(f"SourceArray core must be > 0 m, got {core}.")
+        self.bound = float(bound)
+        self.affine = bool(affine)
+        if extent is None:
+            lo, hi = s.min(axis=0), s.max(axis=0)
+            extent = (lo[0], hi[0], lo[1], hi[1])
+        self.extent = tuple(float(v) for v in extent)
+        self.tags = frozenset({"affine_in_input", "zero_idle"} if affine else {"zero_idle"})
+        self._channels = tuple(Channel(f"source_{k + 1}", "1", -self.bound, self.bound) for k in range(len(s)))
+
+    @property
+    def channels(self):
+        return self._channels
+
+    def _velocity(self, body, medium, xy, u):
+        d = self.sources[None, :, :] - xy[:, None, :]            # (n, K, 2)
+        shape = self.core * d / (np.sum(d * d, axis=2, keepdims=True) + self.core**2)
+        gain = u if self.affine else u * np.abs(u)
+        f = self.force * np.einsum("k,nkd->nd", gain, shape)
+        return f / drag_coefficient(body, medium)
