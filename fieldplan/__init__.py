@@ -19,6 +19,9 @@ from .body import Body, Shell
 from .errors import (ActuatorError, FieldplanError, LimitError, ScenarioError, UnitError,
                      WorkspaceError)
 from .medium import Medium, air, water
+from .registry import available_actuators, load_actuator
+from .schedule import ChannelLimit, HardwareLimits, Schedule
+from .simulate import Rollout, Simulator, rollout
 from .units import to_si
 from .workspace import Workspace, circle, polygon, rectangle
 
@@ -26,6 +29,7 @@ __version__ = "0.1.0"
 
 __all__ = [
     "to_si", "Medium", "water", "air", "Body", "Shell", "Workspace", "rectangle", "circle", "polygon",
-    "Actuator", "Channel", "Primitive", "FieldBasis", "Segment", "TAGS",
+    "Actuator", "Channel", "Primitive", "FieldBasis", "Segment", "TAGS", "load_actuator",
+    "available_actuators", "Schedule", "HardwareLimits", "ChannelLimit", "Simulator", "rollout", "Rollout",
     "FieldplanError", "UnitError", "ActuatorError", "WorkspaceError", "LimitError", "ScenarioError",
 ]
