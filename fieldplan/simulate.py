@@ -188,14 +188,18 @@ class Simulator:
                 dist = np.linalg.norm(x[:, None, :] - x[None, :, :], axis=2)
                 self._in_contact = {(i, j) for (i, j) in self._in_contact
                                     if dist[i, j] < (r[i] + r[j]) * (1 + 1e-6)}
-        for i in range(n):
-            if not self.workspace.contains(x[i:i + 1], r[i])[0]:
-                x[i:i + 1], _ = self.workspace.project(x[i:i + 1], r[i])
+        for rad in np.unique(r):
+            idx = np.flatnonzero(r == rad)
+            inside = self.workspace.contains(x[idx], rad)
+            for i in idx[~inside]:
+                x[i:i + 1], _ = self.workspace.project(x[i:i + 1], rad)
                 if i not in self._on_wall:
-                    self._on_wall.add(i)
-                    self.events.append(Event(self.time, "wall", (i,)))
-            elif i in self._on_wall and self.workspace.clearance(x[i:i + 1])[0] > r[i] * (1 + 1e-3):
-                self._on_wall.discard(i)
+                    self._on_wall.add(int(i))
+                    self.events.append(Event(self.time, "wall", (int(i),)))
+            if self._on_wall:
+                for i in idx[inside]:
+                    if i in self._on_wall and self.workspace.clearance(x[i:i + 1])[0] > rad * (1 + 1e-3):
+                        self._on_wall.discard(i)
         return x
 
     # -- measurement --------------------------------------------------------------------------------
