@@ -15,6 +15,7 @@ __all__ = [
     "reynolds_number",
     "inertial_relaxation_time",
     "FAXEN_MIN_RATIO",
+    "regime_warnings",
 ]
 
 #: Below this ratio h/r of centre height to radius the Faxen series is no longer accurate
@@ -105,3 +106,35 @@ def reynolds_number(speed, radius, medium):
 def inertial_relaxation_time(body, medium):
     """Momentum relaxation time ``2 rho_p r^2 / (9 eta)`` of a sphere, s."""
     return 2.0 * body.density * body.radius**2 / (9.0 * medium.viscosity)
+
+
+def regime_warnings(bodies, medium, speed, period):
+    """Reasons the overdamped model may not hold, as sentences (empty list if it holds).
+
+    Common practice (no single source): the Reynolds number ``rho v d / eta`` should be well below
+    1 and the inertial relaxation time ``2 rho_p r^2 / (9 eta)`` well below the control period; we
+    flag ``Re > 0.1`` and ``tau > period / 10``. Plate grains in air hop rather than glide and are
+    exempt (their drift law is empirical).
+
+    Parameters
+    ----------
+    bodies : sequence of Body
+    medium : Medium
+    speed : float
+        Largest expected speed, m/s.
+    period : float
+        Control period, s.
+    """
+    out = []
+    if not medium.submerged:
+        return out
+    for b in {b.name: b for b in bodies}.values():
+        re = reynolds_number(speed, b.radius, medium)
+        tau = inertial_relaxation_time(b, medium)
+        if re > 0.1:
+            out.append(f"body kind {b.name!r}: Reynolds number {re:.2g} at {speed:.3g} m/s is not << 1; "
+                       "the overdamped (Stokes) model underestimates drag and ignores inertia.")
+        if tau > 0.1 * period:
+            out.append(f"body kind {b.name!r}: inertial relaxation time {tau:.3g} s is not << the control "
+                       f"period {period:.3g} s; velocity does not follow force at once.")
+    return out

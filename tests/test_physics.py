@@ -53,3 +53,14 @@ def test_bad_bodies(kwargs, fragment):
     with pytest.raises(FieldplanError, match=fragment):
         Body("b", **kwargs)
     assert np.isfinite(Body("ok", 1e-6, 1000.0).height)
+
+
+def test_regime_warnings_flag_inertia_and_reynolds():
+    # CHECKS.md [common practice]: Re << 1 and tau << period for the overdamped model.
+    from fieldplan.physics import regime_warnings
+    w = water()
+    bead = Body("bead", 1e-6, 1050.0)
+    assert regime_warnings([bead], w, 1e-4, 0.1) == []
+    big = Body("ball", 1e-3, 7800.0)
+    msgs = regime_warnings([big], w, 1e-2, 0.05)
+    assert any("Reynolds" in m for m in msgs) and any("relaxation" in m for m in msgs)
