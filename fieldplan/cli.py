@@ -1,0 +1,575 @@
+"""The ``fieldplan`` command: run, compare, inspect and validate scenarios; fit calibrated actuators.
+
+Exit codes: 0 success; 1 planned (or replayed) but some goal was not reached; 2 bad input (the
+message names file, line and key, or channel, time and limit; no traceback); 3 internal error (a
+bug: the traceback is printed). ``fieldplan <subcommand> --help`` shows each subcommand with an
+example.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import textwrap
+import time
+
+from .errors import FieldplanError, LimitError, ScenarioError
+
+__all__ = ["main", "build_parser", "EXIT_OK", "EXIT_NOT_REACHED", "EXIT_BAD_INPUT", "EXIT_INTERNAL"]
+
+EXIT_OK, EXIT_NOT_REACHED, EXIT_BAD_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
+
+
+class _UserError(Exception):
+    """A problem with what the user gave us (exit 2, no traceback)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # argparse's own exit code for usage errors is 2 as well; keep one format
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_BAD_INPUT, f"fieldplan: error: {message}\n")
+
+
+def _fmt(description, example):
+    return argparse.RawDescriptionHelpFormatter, textwrap.dedent(description).strip() + \
+        "\n\nexample:\n" + textwrap.indent(textwrap.dedent(example).strip(), "  ")
+
+
+def build_parser():
+    """The argparse parser of the ``fieldplan`` command."""
+    p = _Parser(prog="fieldplan", formatter_class=argparse.RawDescriptionHelpFormatter,
+                description="Plan timed input sequences that steer several small bodies with a few shared "
+                            "field inputs; simulate, export for hardware, compare actuation schemes.",
+                epilog="exit codes: 0 success, 1 some goal not reached, 2 bad input, 3 internal error.\n"
+                       "example:\n  fieldplan run scenarios/demo.yaml --out demo-output")
+    from . import __version__  # noqa: PLC0415
+
+    p.add_argument("--version", action="version", version=f"fieldplan {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="<command>", parser_class=_Parser)
+
+    def add(name, help_, description, example):
+        fmt, desc = _fmt(description, example)
+        return sub.add_parser(name, help=help_, description=desc, formatter_class=fmt)
+
+    r = add("run", "plan a scenario, simulate its trials and write the output folder",
+            """
+            Plan the scenario (or replay a schedule), simulate the trials on the truth actuator, check
+            the schedule against the declared limits and write the output folder: schedule.csv,
+            schedule.json, trajectories.csv, summary.json and PNG plots (see the README for the
+            layouts). Nothing is written if the schedule breaks a limit (exit 2).
+            """,
+            """
+            fieldplan run scenarios/demo.yaml --out demo-output --force
+            fieldplan run my-dish.yaml --trials 20 --seed 3 --out runs/seed3
+            fieldplan run my-dish.yaml --schedule runs/seed3/schedule.csv --out replay   # replay on the truth model
+            """)
+    r.add_argument("scenario", help="scenario YAML file")
+    r.add_argument("--out", "-o", default=None, help="output folder (default: <scenario name>-output)")
+    r.add_argument("--force", action="store_true", help="replace an existing output folder")
+    r.add_argument("--trials", type=_nonneg_int, default=None, help="override simulation.trials")
+    r.add_argument("--seed", type=_nonneg_int, default=None, help="override simulation.seed")
+    r.add_argument("--schedule", default=None, metavar="CSV_OR_JSON",
+                   help="replay this schedule instead of planning (its channels must match the actuator)")
+    r.add_argument("--no-plots", action="store_true", help="skip the PNG plots and the animation")
+    r.add_argument("--quiet", "-q", action="store_true", help="print errors only")
+
+    c = add("compare", "run several scenarios or variants over seeds and tabulate the metrics",
+            """
+            Run every scenario file (a file with a `variants` list contributes one row per variant, a
+            file without one row) for every seed, and write comparison.md, comparison.csv,
+            comparison.json and comparison.png (bar chart) to the output folder. Runs go to local
+            worker processes, or to a dask.distributed scheduler with --scheduler.
+            """,
+            """
+            fieldplan compare scenarios/compare-all.yaml --seeds 4 --out cmp
+            fieldplan compare coils.yaml electrodes.yaml --seeds 0,1,2 --workers 2 --out cmp --force
+            fieldplan compare big.yaml --seeds 50 --scheduler tcp://10.0.0.5:8786 --out cmp
+            """)
+    c.add_argument("scenarios", nargs="+", help="scenario YAML files")
+    c.add_argument("--out", "-o", default="comparison", help="output folder (default: comparison)")
+    c.add_argument("--force", action="store_true", help="replace an existing output folder")
+    c.add_argument("--seeds", default="3", help="a count N (seeds 0..N-1) or a comma list (default 3)")
+    c.add_argument("--trials", type=_nonneg_int, default=1, help="trials per (variant, seed) (default 1)")
+    c.add_argument("--workers", type=_nonneg_int, default=None,
+                   help="local worker processes (default: CPU count; 1: run in this process)")
+    c.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="dask.distributed scheduler address, e.g. tcp://host:8786 (needs fieldplan[cluster])")
+    c.add_argument("--quiet", "-q", action="store_true", help="print errors only")
+
+    i = add("inspect", "field plots per primitive and the steerability summary of a scenario's actuator",
+            """
+            Plot each primitive's velocity field for every body kind, the worst-direction speed map of
+            one body over the workspace (dead zones), the "how many bodies can it steer" curve, and
+            print the steerability of all bodies at their starts (fieldplan.steer).
+            """,
+            """
+            fieldplan inspect scenarios/coils.yaml --out coils-inspect
+            fieldplan inspect scenarios/plate.yaml --counts 1,2,3,4 --trials 20 --out plate-inspect --force
+            """)
+    i.add_argument("scenario", help="scenario YAML file")
+    i.add_argument("--out", "-o", default=None, help="output folder (default: <scenario name>-inspect)")
+    i.add_argument("--force", action="store_true", help="replace an existing output folder")
+    i.add_argument("--counts", default=None, help="body counts of the steerability curve, e.g. 1,2,3 "
+                                                  "(default 1..number of bodies + 1)")
+    i.add_argument("--trials", type=_nonneg_int, default=20, help="random configurations per count (default 20)")
+    i.add_argument("--grid", type=_nonneg_int, default=32, help="speed-map grid points per side (default 32)")
+    i.add_argument("--quiet", "-q", action="store_true", help="print errors only")
+
+    v = add("validate", "check scenario files without running them",
+            """
+            Read and validate each file, reporting every problem at once with file, line and key. With
+            --normalised, print the file in its normalised SI form (what `fieldplan run` uses).
+            """,
+            """
+            fieldplan validate scenarios/*.yaml
+            fieldplan validate my-dish.yaml --normalised > my-dish.si.yaml
+            """)
+    v.add_argument("scenarios", nargs="+", help="scenario YAML files")
+    v.add_argument("--normalised", action="store_true", help="print the normalised SI YAML of each file")
+    v.add_argument("--quiet", "-q", action="store_true", help="print errors only")
+
+    f = add("fit", "fit a calibrated actuator from a tracking CSV (fieldplan.calibrate)",
+            """
+            Read tracks, differentiate them, fit one smooth velocity field per primitive, and write the
+            calibrated actuator (<name>.npz + <name>.json, usable in a scenario as
+            `actuator: {type: calibrated, path: <folder>/<name>.json}`) with a report and plots.
+            """,
+            """
+            fieldplan fit scenarios/data/tracks-demo.csv --out calib --idle off
+            fieldplan fit tracks.csv --out calib --name dish3 --primitives coil_1+,coil_2+ --units x=um,y=um
+            """)
+    f.add_argument("tracks", help="tracking CSV (layout in fieldplan.tracking)")
+    f.add_argument("--out", "-o", required=True, help="output folder")
+    f.add_argument("--force", action="store_true", help="write into an existing folder")
+    f.add_argument("--name", default="actuator", help="stem of the output files (default: actuator)")
+    f.add_argument("--idle", default=None, help="name of the idle (all-off) primitive in the data")
+    f.add_argument("--primitives", default=None, help="fit only these primitives (comma list)")
+    f.add_argument("--units", default=None, help="units of columns without [unit] in the header: col=unit,...")
+    f.add_argument("--no-plots", action="store_true", help="skip the report plots")
+    f.add_argument("--quiet", "-q", action="store_true", help="print errors only")
+
+    s = add("schema", "print the scenario key reference and the registered actuators",
+            """
+            Print every section and key of the scenario format (type, unit, default, meaning) as
+            Markdown, then the registered actuators with their constructor parameters.
+            """,
+            """
+            fieldplan schema > SCENARIO-REFERENCE.md
+            """)
+    s.add_argument("--actuators-only", action="store_true", help="only list the registered actuators")
+    return p
+
+
+def _nonneg_int(text):
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"expected a number >= 0, got {v}")
+    return v
+
+
+def _say(args, *lines, err=False):
+    if getattr(args, "quiet", False) and not err:
+        return
+    print(*lines, sep="\n", file=sys.stderr if err else sys.stdout, flush=True)
+
+
+def _show_progress(args):
+    return not getattr(args, "quiet", False) and sys.stderr.isatty()
+
+
+def _load(path, args):
+    from .scenario import load_scenario  # noqa: PLC0415
+
+    sc = load_scenario(path)
+    for w in sc.warnings:
+        _say(args, f"warning: {w}", err=not args.quiet)
+    return sc
+
+
+def _default_out(sc, suffix):
+    base = os.path.splitext(os.path.basename(sc.source or sc.name))[0]
+    return f"{base}-{suffix}"
+
+
+# ---------------------------------------------------------------------------------------------
+def _cmd_run(args):
+    from .compare import run_scenario  # noqa: PLC0415
+    from .export import check_output_folder, write_outputs  # noqa: PLC0415
+
+    sc = _load(args.scenario, args)
+    out = args.out or _default_out(sc, "output")
+    check_output_folder(out, args.force)
+    schedule = None
+    if args.schedule:
+        schedule = _read_schedule(args.schedule, sc)
+    t0 = time.perf_counter()
+    if sc.mode == "open_loop" and schedule is None:
+        _say(args, f"planning {sc.name}: {len(sc.bodies)} bodies, {type(sc.actuator).__name__} with "
+                   f"{len(sc.actuator.channels)} channels ...")
+    run = run_scenario(sc, schedule=schedule, trials=args.trials, seed=args.seed, progress=_show_progress(args))
+    outputs = sc.outputs
+    if args.no_plots:
+        import dataclasses  # noqa: PLC0415
+
+        outputs = dataclasses.replace(outputs, plots=(), animation=False)
+    try:
+        files = write_outputs(out, run, force=args.force, outputs=outputs)
+    except LimitError as exc:
+        raise _UserError(f"refusing to export the schedule: {exc}") from None
+    agg = run.aggregate()
+    _say(args, f"{sc.name}: {run.message} ({time.perf_counter() - t0:.1f} s)")
+    if run.trials:
+        _say(args, f"  success rate {100 * agg['success_rate']:.0f} %, mean final error "
+                   f"{agg['final_error']:.3g} m, min separation {agg['min_separation']:.3g} m")
+    if run.schedule is not None:
+        _say(args, f"  schedule: {run.schedule.n_segments} segments, {run.schedule.duration:.4g} s, checked "
+                   "against the declared limits")
+    _say(args, f"outputs in {os.path.abspath(out)}:")
+    for role, path in sorted(files.items(), key=lambda kv: os.path.basename(kv[1])):
+        _say(args, f"  {os.path.basename(path)}")
+    return run.exit_code
+
+
+def _read_schedule(path, sc):
+    from .schedule import Schedule  # noqa: PLC0415
+
+    if not os.path.exists(path):
+        raise _UserError(f"{path}: no such schedule file.")
+    try:
+        if path.lower().endswith(".json"):
+            return Schedule.read_json(path)
+        return Schedule.read_csv(path, sc.actuator.channels)
+    except FieldplanError as exc:
+        raise _UserError(f"{path}: {exc}") from None
+    except (ValueError, KeyError, IndexError, json.JSONDecodeError) as exc:
+        raise _UserError(f"{path}: cannot read the schedule ({type(exc).__name__}: {exc}).") from None
+
+
+# ---------------------------------------------------------------------------------------------
+def _parse_seeds(text):
+    text = str(text).strip()
+    try:
+        if "," in text:
+            seeds = [int(s) for s in text.split(",") if s.strip()]
+        else:
+            seeds = list(range(int(text)))
+    except ValueError:
+        raise _UserError(f"--seeds: expected a count or a comma list of whole numbers, got {text!r}.") from None
+    if not seeds or any(s < 0 for s in seeds):
+        raise _UserError(f"--seeds: need at least one seed >= 0, got {text!r}.")
+    return seeds
+
+
+def _cmd_compare(args):
+    import shutil  # noqa: PLC0415
+    import tempfile  # noqa: PLC0415
+
+    from .compare import compare, make_executor  # noqa: PLC0415
+    from .export import check_output_folder, json_safe  # noqa: PLC0415
+    from .plots import save  # noqa: PLC0415
+    from .schedule import atomic_write  # noqa: PLC0415
+
+    seeds = _parse_seeds(args.seeds)
+    problems, scenarios = [], []
+    for path in args.scenarios:
+        try:
+            sc = _load(path, args)
+        except ScenarioError as exc:
+            problems.extend(exc.problems)
+            continue
+        scenarios.extend(sc.variants if sc.variants else [sc])
+    if problems:
+        raise ScenarioError(problems)
+    names = [s.name for s in scenarios]
+    dup = sorted({n for n in names if names.count(n) > 1})
+    if dup:
+        raise _UserError(f"two scenarios or variants share the label(s) {dup}; give each file a distinct 'name'.")
+    check_output_folder(args.out, args.force)
+    n_tasks = len(scenarios) * len(seeds)
+    workers = args.workers if args.workers is not None else min(os.cpu_count() or 1, n_tasks)
+    _say(args, f"comparing {len(scenarios)} variant(s) x {len(seeds)} seed(s), {args.trials} trial(s) each"
+               + (f" on {args.scheduler}" if args.scheduler else f" with {workers} worker(s)") + " ...")
+    with make_executor(args.scheduler, workers) as ex:
+        cmp = compare(scenarios, seeds=seeds, trials=args.trials, executor=ex, progress=_show_progress(args))
+    out = os.path.abspath(args.out)
+    parent = os.path.dirname(out)
+    os.makedirs(parent, exist_ok=True)
+    tmp = tempfile.mkdtemp(prefix=f".{os.path.basename(out)}.tmp-", dir=parent)
+    try:
+        atomic_write(os.path.join(tmp, "comparison.md"), cmp.to_markdown() + "\n")
+        atomic_write(os.path.join(tmp, "comparison.csv"), cmp.to_csv())
+        atomic_write(os.path.join(tmp, "comparison.json"),
+                     json.dumps(json_safe({"seeds": seeds, "trials": args.trials, "rows": cmp.rows,
+                                           "runs": cmp.runs}), indent=1, allow_nan=False))
+        save(cmp.bar_chart(), os.path.join(tmp, "comparison.png"))
+        from .export import _swap  # noqa: PLC0415
+
+        _swap(tmp, out, args.force)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    _say(args, cmp.to_markdown())
+    for r in cmp.rows:
+        for m in r["error_messages"][:1]:
+            _say(args, f"warning: variant {r['label']}: {len(r['error_messages'])} run(s) failed: {m}", err=True)
+    _say(args, f"outputs in {out}:", "  comparison.md", "  comparison.csv", "  comparison.json", "  comparison.png")
+    failed = any(r["errors"] for r in cmp.rows)
+    below = False
+    for s, r in zip(scenarios, cmp.rows):
+        rate = r.get("success_rate")
+        if rate is not None and rate == rate and rate < s.simulation.required_success - 1e-12:
+            below = True
+    return EXIT_NOT_REACHED if (failed or below) else EXIT_OK
+
+
+# ---------------------------------------------------------------------------------------------
+def _cmd_inspect(args):
+    import shutil  # noqa: PLC0415
+    import tempfile  # noqa: PLC0415
+
+    import numpy as np  # noqa: PLC0415
+
+    from .export import _swap, check_output_folder  # noqa: PLC0415
+    from .plots import plot_primitive_fields, save  # noqa: PLC0415
+    from .schedule import atomic_write  # noqa: PLC0415
+
+    sc = _load(args.scenario, args)
+    out = os.path.abspath(args.out or _default_out(sc, "inspect"))
+    check_output_folder(out, args.force)
+    if args.counts:
+        try:
+            counts = [int(x) for x in args.counts.split(",") if x.strip()]
+        except ValueError:
+            raise _UserError(f"--counts: expected a comma list of whole numbers, got {args.counts!r}.") from None
+        if not counts or min(counts) < 1:
+            raise _UserError(f"--counts: counts must be >= 1, got {args.counts!r}.")
+    else:
+        counts = list(range(1, len(sc.bodies) + 2))
+    parent = os.path.dirname(out)
+    os.makedirs(parent, exist_ok=True)
+    tmp = tempfile.mkdtemp(prefix=f".{os.path.basename(out)}.tmp-", dir=parent)
+    lines = [f"# {sc.name}: {sc.actuator.describe()}", ""]
+    report = {"scenario": sc.name, "actuator": type(sc.actuator).__name__,
+              "channels": [{"name": c.name, "unit": c.unit, "lower": c.lower, "upper": c.upper}
+                           for c in sc.actuator.channels],
+              "primitives": [p.name for p in sc.actuator.primitives()]}
+    try:
+        kinds = list({b.name: b for b in sc.bodies}.values())
+        for b in kinds:
+            fig = plot_primitive_fields(sc.actuator, b, sc.medium, sc.workspace)
+            save(fig, os.path.join(tmp, f"fields-{_safe(b.name)}.png"))
+        try:
+            from . import steer  # noqa: PLC0415
+        except ImportError:
+            steer = None
+            lines.append("steerability analysis not available (fieldplan.steer missing).")
+        if steer is not None:
+            basis = sc.actuator.basis(sc.bodies, sc.medium, sc.starts)
+            st = steer.steerability(basis)
+            lines += ["## All bodies at their starts", "", st.summary(), ""]
+            report["at_start"] = {"steerable": st.steerable, "speed": st.speed, "rank": st.rank,
+                                  "condition": st.condition, "method": st.method}
+            for b in kinds:
+                bf = steer.basis_function(sc.actuator, b, sc.medium)
+                sm = steer.speed_map(bf, sc.workspace, shape=(args.grid, args.grid))
+                save(_speed_map_figure(sm, sc, b), os.path.join(tmp, f"speed-map-{_safe(b.name)}.png"))
+                lines.append(f"## {b.name}: one body over the workspace")
+                lines.append(f"mean worst-direction speed {sm.mean_speed:.3g} m/s; dead (some direction "
+                             f"unavailable) on {100 * sm.dead_fraction:.1f} % of the free space")
+                report.setdefault("speed_maps", {})[b.name] = {"mean_speed": sm.mean_speed,
+                                                               "dead_fraction": sm.dead_fraction}
+                if args.trials:
+                    cc = steer.count_curve(bf, sc.workspace, counts, trials=args.trials, rng=sc.simulation.seed,
+                                           progress=_show_progress(args))
+                    save(_count_figure(cc, b), os.path.join(tmp, f"count-curve-{_safe(b.name)}.png"))
+                    lines.append("bodies steerable now, fraction of random configurations: " + ", ".join(
+                        f"N={n}: {fr:.2f}" for n, fr in zip(cc.counts, cc.fraction))
+                        + f" (counting limit K/2 = {cc.counting_limit:g})")
+                    report.setdefault("count_curves", {})[b.name] = {
+                        "counts": np.asarray(cc.counts).tolist(), "fraction": np.asarray(cc.fraction).tolist()}
+                lines.append("")
+        atomic_write(os.path.join(tmp, "inspect.md"), "\n".join(lines) + "\n")
+        from .export import json_safe  # noqa: PLC0415
+
+        atomic_write(os.path.join(tmp, "inspect.json"), json.dumps(json_safe(report), indent=1, allow_nan=False))
+        _swap(tmp, out, args.force)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    _say(args, *lines)
+    _say(args, f"outputs in {out}:", *(f"  {n}" for n in sorted(os.listdir(out))))
+    return EXIT_OK
+
+
+def _safe(name):
+    return "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in name)
+
+
+def _speed_map_figure(sm, sc, body):
+    import numpy as np  # noqa: PLC0415
+
+    from .plots import _draw_workspace, _figure, _speed_unit, length_unit  # noqa: PLC0415
+
+    xmin, ymin, xmax, ymax = sc.workspace.bounds
+    f, unit = length_unit(max(xmax - xmin, ymax - ymin))
+    vmax = float(np.nanmax(sm.speed)) if np.any(np.isfinite(sm.speed)) else 1.0
+    sf, su = _speed_unit(vmax or 1.0)
+    fig = _figure(figsize=(6.5, 5.2), layout="constrained")
+    ax = fig.add_subplot()
+    mesh = ax.pcolormesh(sm.xs * f, sm.ys * f, sm.speed * sf, shading="auto", cmap="magma")
+    fig.colorbar(mesh, ax=ax, label=f"worst-direction speed [{su}]")
+    if sm.dead.any():
+        ys, xs = np.nonzero(sm.dead)
+        ax.scatter(sm.xs[xs] * f, sm.ys[ys] * f, marker="s", s=6, c="c", label="dead (a direction unavailable)")
+        ax.legend(loc="upper right", fontsize=7)
+    _draw_workspace(ax, sc.workspace, f)
+    ax.set_aspect("equal")
+    ax.set_xlabel(f"x [{unit}]")
+    ax.set_ylabel(f"y [{unit}]")
+    ax.set_title(f"{body.name}: worst-direction speed of one body")
+    return fig
+
+
+def _count_figure(cc, body):
+    import numpy as np  # noqa: PLC0415
+
+    from .plots import _figure  # noqa: PLC0415
+
+    fig = _figure(figsize=(6.0, 4.0), layout="constrained")
+    ax = fig.add_subplot()
+    c = np.asarray(cc.counts)
+    ax.errorbar(c, cc.fraction, yerr=[np.asarray(cc.fraction) - cc.low, cc.high - np.asarray(cc.fraction)],
+                marker="o", capsize=3, label=f"{body.name} ({cc.trials} random configurations each)")
+    ax.axvline(cc.counting_limit, color="k", ls="--", lw=0.8, label=f"counting limit K/2 = {cc.counting_limit:g}")
+    ax.set_xlabel("number of bodies N [-]")
+    ax.set_ylabel("fraction steerable now [-]")
+    ax.set_ylim(-0.05, 1.05)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    ax.set_title("how many bodies can this actuator steer at once")
+    return fig
+
+
+# ---------------------------------------------------------------------------------------------
+def _cmd_validate(args):
+    from .scenario import dump_scenario  # noqa: PLC0415
+
+    problems = []
+    for path in args.scenarios:
+        try:
+            sc = _load(path, args)
+        except ScenarioError as exc:
+            problems.extend(exc.problems)
+            continue
+        if args.normalised:
+            print(f"# {path} (normalised, SI units)")
+            print(dump_scenario(sc))
+            for v in sc.variants:
+                print(f"# {path}: variant {v.name}")
+                print(dump_scenario(v))
+        else:
+            _say(args, f"{path}: ok - {len(sc.bodies)} bodies, {type(sc.actuator).__name__} with "
+                       f"{len(sc.actuator.channels)} channels"
+                       + (f", {len(sc.variants)} variants" if sc.variants else ""))
+    if problems:
+        raise ScenarioError(problems)
+    return EXIT_OK
+
+
+def _cmd_fit(args):
+    try:
+        from .calibrate import calibrate_command  # noqa: PLC0415
+    except ImportError as exc:
+        raise _UserError(f"calibration is not available ({exc}).") from None
+    if os.path.exists(args.out) and not args.force:
+        raise _UserError(f"output folder {args.out!r} already exists; pass --force to write into it.")
+    if not os.path.exists(args.tracks):
+        raise _UserError(f"{args.tracks}: no such tracking file.")
+    units = None
+    if args.units:
+        units = {}
+        for item in args.units.split(","):
+            if "=" not in item:
+                raise _UserError(f"--units: expected col=unit pairs, got {item!r}.")
+            k, u = item.split("=", 1)
+            units[k.strip()] = u.strip()
+    prims = [p.strip() for p in args.primitives.split(",")] if args.primitives else None
+    rep = calibrate_command(args.tracks, args.out, primitives=prims, units=units, idle=args.idle, name=args.name,
+                            plots=not args.no_plots)
+    for row in rep.get("fields", [])[:20]:
+        _say(args, "  " + ", ".join(f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in row.items()))
+    for w in rep.get("warnings", []):
+        _say(args, f"warning: {w}", err=True)
+    _say(args, f"calibrated actuator: {rep['actuator']}", f"report: {rep['report']}",
+         f"use it in a scenario as: actuator: {{type: calibrated, path: {rep['actuator']}}}")
+    return EXIT_OK
+
+
+def _cmd_schema(args):
+    from .registry import available_actuators, load_actuator_class  # noqa: PLC0415
+    from .scenario import actuator_params, schema_reference  # noqa: PLC0415
+
+    if not args.actuators_only:
+        print(schema_reference())
+    print("### Registered actuators\n")
+    for name, target in sorted(available_actuators().items()):
+        try:
+            cls = load_actuator_class(name)
+            params = actuator_params(cls)
+            desc = ", ".join(f"{n}" + (f" [{u}]" if u else "") for n, (_, u) in params.items())
+        except FieldplanError as exc:
+            desc = f"(cannot load: {exc})"
+        print(f"- `{name}` ({target}): {desc}")
+    return EXIT_OK
+
+
+_COMMANDS = {"run": _cmd_run, "compare": _cmd_compare, "inspect": _cmd_inspect, "validate": _cmd_validate,
+             "fit": _cmd_fit, "schema": _cmd_schema}
+
+
+def main(argv=None):
+    """Entry point of the ``fieldplan`` console script; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not args.command:
+        parser.print_help()
+        return EXIT_BAD_INPUT
+    try:
+        return _COMMANDS[args.command](args)
+    except ScenarioError as exc:
+        n = len(exc.problems)
+        print(f"fieldplan: {n} problem{'s' if n != 1 else ''} found:", file=sys.stderr)
+        for p in exc.problems:
+            print("  " + ScenarioError.format_problem(*p), file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except (FieldplanError, _UserError) as exc:
+        print(f"fieldplan: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("fieldplan: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return EXIT_OK
+    except OSError as exc:
+        print(f"fieldplan: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except Exception:  # noqa: BLE001 - a bug: show it in full, with its own exit code
+        import traceback  # noqa: PLC0415
+
+        traceback.print_exc()
+        print("fieldplan: internal error (this is a bug; please report it with the scenario file).",
+              file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+def _entry():  # pragma: no cover - console-script shim
+    sys.exit(main())
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,585 @@
+"""Running scenarios and comparing actuation schemes on the same task.
+
+:func:`run_scenario` is the unit of work: plan once (or replay a given schedule, or run the live
+loop per trial), simulate the trials on the truth actuator, and collect metrics in a
+:class:`RunResult`. :func:`compare` runs it over several scenarios or variants and seeds through a
+``concurrent.futures.Executor`` (local processes by default; a dask.distributed ``Client`` when
+given a scheduler address, see :func:`make_executor`) and returns a :class:`Comparison` with a
+Markdown and CSV table and a bar chart.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import contextlib
+import csv
+import io
+import math
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import FieldplanError
+
+__all__ = ["TrialResult", "RunResult", "run_scenario", "replay_schedule_for", "Comparison", "compare",
+           "make_executor", "InlineExecutor", "METRICS", "steerability_at_start"]
+
+
+@dataclass
+class TrialResult:
+    """One simulated execution: true trajectory and metrics (see :func:`fieldplan.simulate.compute_metrics`)."""
+
+    seed: int
+    success: bool
+    message: str
+    times: np.ndarray
+    positions: np.ndarray
+    metrics: dict
+    schedule: object = None
+
+
+@dataclass
+class RunResult:
+    """Everything ``fieldplan run`` reports and writes.
+
+    Attributes
+    ----------
+    scenario : Scenario
+    schedule : Schedule or None
+        The schedule written for hardware (in closed-loop mode: the one played in trial 1).
+    goals : ndarray, shape (n, 2)
+        m, per body (after goal assignment for unlabelled goals).
+    tolerance : float or None
+        Arrival radius, m (None: each body's radius).
+    plan_source : {"planner", "replay", "live"}
+    plan_success : bool or None
+        The planner's own verdict (None for a replayed schedule).
+    trials : list of TrialResult
+    """
+
+    scenario: object
+    schedule: object
+    goals: np.ndarray
+    tolerance: float | None = None
+    plan_source: str = "planner"
+    plan_success: bool | None = None
+    plan_status: object = None
+    plan_message: str = ""
+    planning_time: float = 0.0
+    step_times: list = field(default_factory=list)
+    stalls: list = field(default_factory=list)
+    bodies_report: list = field(default_factory=list)
+    routes: list | None = None
+    predicted_times: np.ndarray | None = None
+    predicted_positions: np.ndarray | None = None
+    trials: list = field(default_factory=list)
+
+    @property
+    def time_per_step(self):
+        """Mean planning time per control step, s (nan when unknown)."""
+        return float(np.mean(self.step_times)) if len(self.step_times) else float("nan")
+
+    @property
+    def success_rate(self):
+        """Fraction of trials in which every body reached its goal (nan without trials)."""
+        return float(np.mean([t.success for t in self.trials])) if self.trials else float("nan")
+
+    @property
+    def exit_code(self):
+        """0: goals reached (plan and at least ``required_success`` of the trials); 1 otherwise."""
+        if self.plan_success is False:
+            return 1
+        if self.trials and self.success_rate < self.scenario.simulation.required_success - 1e-12:
+            return 1
+        return 0
+
+    @property
+    def message(self):
+        parts = []
+        if self.plan_source == "replay":
+            parts.append("replayed the given schedule")
+        elif self.plan_success is not None:
+            parts.append(("plan reached every goal" if self.plan_success else "plan did not reach every goal")
+                         + (f" ({self.plan_message})" if self.plan_message and not self.plan_success else ""))
+        if self.trials:
+            ok = sum(t.success for t in self.trials)
+            parts.append(f"{ok} of {len(self.trials)} trial(s) reached every goal")
+            if ok < len(self.trials):
+                first = next(t for t in self.trials if not t.success)
+                parts.append(f"first miss: {first.message}")
+        return "; ".join(parts)
+
+    def aggregate(self):
+        """Means over trials of the comparison metrics (SI), dict."""
+        t = self.trials
+        out = {"trials": len(t), "success_rate": self.success_rate,
+               "planning_time": self.planning_time, "planning_time_per_step": self.time_per_step}
+        if t:
+            ttg = [x.metrics.get("time_to_goal", float("nan")) for x in t]
+            out["time_to_goal"] = _nanmean(ttg)
+            out["final_error"] = float(np.mean([np.mean(x.metrics.get("final_error", [np.nan])) for x in t]))
+            out["final_error_max"] = float(np.max([np.max(x.metrics.get("final_error", [np.nan])) for x in t]))
+            out["min_separation"] = float(np.min([x.metrics.get("min_separation", np.inf) for x in t]))
+            out["contacts"] = float(np.mean([x.metrics.get("contacts", 0) for x in t]))
+            out["wall_contacts"] = float(np.mean([x.metrics.get("wall_contacts", 0) for x in t]))
+            out["input_energy"] = float(np.mean([sum(x.metrics.get("input_energy", {}).values()) for x in t]))
+        elif self.schedule is not None:
+            out["input_energy"] = float(np.sum(self.schedule.energy()))
+        return out
+
+
+def _nanmean(x):
+    x = np.asarray(x, dtype=float)
+    return float(np.nanmean(x)) if np.any(np.isfinite(x)) else float("nan")
+
+
+def _progress(iterable, total, show, desc):
+    if not show:
+        return iterable
+    from tqdm import tqdm  # noqa: PLC0415
+
+    return tqdm(iterable, total=total, desc=desc, unit="run", leave=False, file=sys.stderr)
+
+
+def _quantised(schedule, limits):
+    """Snap to the hardware time step when the schedule is not on it already."""
+    if limits is None or not limits.time_step or not schedule.n_segments:
+        return schedule
+    if any(v[3] == "time_step" for v in schedule.violations(limits)):
+        return schedule.quantise(limits.time_step, limits.min_dwell or 0.0)
+    return schedule
+
+
+def replay_schedule_for(scenario, schedule):
+    """Check that a schedule read from a file fits the scenario's actuator; returns it on its channels."""
+    from .schedule import Schedule  # noqa: PLC0415
+
+    names = [c.name for c in scenario.actuator.channels]
+    got = [c.name for c in schedule.channels]
+    if got != names:
+        raise FieldplanError(f"the schedule's channels {got} do not match the actuator's channels {names}.")
+    for c, s in zip(scenario.actuator.channels, schedule.channels):
+        if s.unit != c.unit:
+            raise FieldplanError(f"channel {c.name!r}: the schedule gives {s.unit!r}, the actuator expects {c.unit!r}.")
+    return Schedule(scenario.actuator.channels, schedule.starts, schedule.durations, schedule.values,
+                    schedule.labels, schedule.meta)
+
+
+def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=False):
+    """Plan (or replay), simulate the trials and collect metrics.
+
+    Parameters
+    ----------
+    scenario : Scenario
+    schedule : Schedule, optional
+        Play this instead of planning (its channels must match the actuator's).
+    trials : int, optional
+        Overrides ``simulation.trials``.
+    seed : int, optional
+        Overrides ``simulation.seed``; trial k uses ``seed + k``.
+    progress : bool
+        Show a tqdm bar over trials (on stderr).
+
+    Returns
+    -------
+    RunResult
+
+    Raises
+    ------
+    LimitError
+        The schedule breaks a declared limit.
+    """
+    from .simulate import compute_metrics, rollout  # noqa: PLC0415
+
+    sc = scenario
+    sim = sc.simulation
+    n_trials = sim.trials if trials is None else int(trials)
+    seed0 = sim.seed if seed is None else int(seed)
+    tol = sc.planner.get("tolerance")
+    goals = np.asarray(sc.goals, dtype=float)
+    run = RunResult(sc, None, goals, tol)
+    if schedule is not None:
+        run.schedule = _quantised(replay_schedule_for(sc, schedule), sc.limits)
+        run.plan_source = "replay"
+    elif sc.mode == "open_loop":
+        try:
+            from .plan import plan  # noqa: PLC0415
+        except ImportError as exc:
+            raise FieldplanError(f"the planner (fieldplan.plan) is not available ({exc}); replay a schedule "
+                                 "with --schedule instead.") from None
+        t0 = time.perf_counter()
+        res = plan(sc.actuator, sc.bodies, sc.workspace, sc.starts, sc.goals, limits=sc.limits,
+                   settings=sc.plan_settings(), rng=seed0)
+        run.planning_time = time.perf_counter() - t0
+        _take_plan(run, res)
+        run.schedule = _quantised(res.schedule, sc.limits)
+    else:
+        run.plan_source = "live"
+    if run.schedule is not None:
+        run.schedule.check(sc.limits)
+    if sc.mode == "closed_loop" and schedule is None:
+        from .plan import closed_loop  # noqa: PLC0415
+
+        t_plan = 0.0
+        for k in _progress(range(n_trials or 1), n_trials or 1, progress, "trials"):
+            t0 = time.perf_counter()
+            live = closed_loop(sc.actuator, sc.truth_actuator, sc.bodies, sc.workspace, sc.starts, sc.goals,
+                               limits=sc.limits, settings=sc.plan_settings(), rng=seed0 + k,
+                               brownian=sim.brownian, tracking_noise=sim.tracking_noise, latency=sim.latency)
+            t_plan += time.perf_counter() - t0
+            g = _assigned_goals(live, goals)
+            sched = getattr(live, "schedule", None)
+            times = np.asarray(live.times, dtype=float)
+            pos = np.asarray(live.positions, dtype=float)
+            m = compute_metrics(times, pos, sc.bodies, g, tol, sched, getattr(live, "events", ()))
+            if k == 0:
+                run.schedule = sched
+                run.goals = g
+                run.step_times = list(getattr(live, "step_times", []) or [])
+                run.routes = getattr(live, "routes", None)
+                run.plan_success = None
+                run.plan_message = getattr(live, "message", "")
+            if n_trials:
+                run.trials.append(TrialResult(seed0 + k, bool(m.get("all_reached", False)),
+                                              _miss_message(sc, m), times, pos, m, sched))
+        run.planning_time = t_plan
+        if run.schedule is not None:
+            run.schedule.check(sc.limits)
+        return run
+    for k in _progress(range(n_trials), n_trials, progress, "trials"):
+        r = rollout(run.schedule, sc.truth_actuator, sc.bodies, sc.workspace, sc.starts, run.goals,
+                    tolerance=tol, rng=seed0 + k, brownian=sim.brownian, **sim.simulator_options())
+        run.trials.append(TrialResult(seed0 + k, bool(r.success), r.message, r.times, r.positions, r.metrics))
+    return run
+
+
+def _miss_message(sc, m):
+    if m.get("all_reached"):
+        return "all bodies reached their goals"
+    return "; ".join(f"body {i} ({b.name}) ended {m['final_error'][i]:.3g} m from its goal"
+                     for i, b in enumerate(sc.bodies) if not m["reached"][i])
+
+
+def _assigned_goals(res, goals):
+    for name in ("goals", "assigned_goals"):
+        g = getattr(res, name, None)
+        if g is not None:
+            return np.asarray(g, dtype=float)
+    a = getattr(res, "assignment", None)
+    if a is not None:
+        return np.asarray(goals, dtype=float)[np.asarray(a, dtype=int)]
+    return np.asarray(goals, dtype=float)
+
+
+def _take_plan(run, res):
+    run.plan_success = bool(res.success)
+    run.plan_status = getattr(res, "status", None)
+    run.plan_message = str(getattr(res, "message", ""))
+    run.step_times = [float(x) for x in (getattr(res, "step_times", None) or [])]
+    run.stalls = [str(s) for s in (getattr(res, "stalls", None) or [])]
+    run.bodies_report = list(getattr(res, "bodies_report", None) or [])
+    routes = getattr(res, "routes", None)
+    run.routes = [np.asarray(r, dtype=float) for r in routes] if routes is not None else None
+    t = getattr(res, "times", None)
+    p = getattr(res, "positions", None)
+    if t is not None and p is not None and len(t):
+        run.predicted_times = np.asarray(t, dtype=float)
+        run.predicted_positions = np.asarray(p, dtype=float)
+    run.goals = _assigned_goals(res, run.goals)
+
+
+# ----------------------------------------------------------------------------------------------
+# Executors
+# ----------------------------------------------------------------------------------------------
+
+class InlineExecutor(cf.Executor):
+    """A ``concurrent.futures.Executor`` that runs each task at once in this process (``--workers 1``)."""
+
+    def submit(self, fn, /, *args, **kwargs):
+        fut = cf.Future()
+        try:
+            fut.set_result(fn(*args, **kwargs))
+        except BaseException as exc:  # noqa: BLE001 - delivered through the future like a pool would
+            fut.set_exception(exc)
+        return fut
+
+
+@contextlib.contextmanager
+def make_executor(scheduler=None, workers=None):
+    """The executor sweeps run on.
+
+    Parameters
+    ----------
+    scheduler : str, optional
+        Address of a dask.distributed scheduler (``tcp://host:8786``); needs the optional
+        ``cluster`` extra (``pip install 'fieldplan[cluster]'``).
+    workers : int, optional
+        Local worker processes (default: CPU count); ``1`` runs in this process.
+
+    Yields
+    ------
+    concurrent.futures.Executor
+    """
+    if scheduler:
+        try:
+            from dask.distributed import Client  # noqa: PLC0415 - optional extra
+        except ImportError:
+            raise FieldplanError("a scheduler address needs dask.distributed: pip install 'fieldplan[cluster]'.") from None
+        try:
+            client = Client(scheduler, timeout="10s")
+        except OSError as exc:
+            raise FieldplanError(f"cannot connect to the dask scheduler at {scheduler!r}: {exc}") from None
+        try:
+            yield client.get_executor()
+        finally:
+            client.close()
+        return
+    if workers is not None and workers <= 1:
+        yield InlineExecutor()
+        return
+    import multiprocessing  # noqa: PLC0415
+
+    # forkserver: workers start from a clean process, not a fork of one holding plotting/BLAS threads.
+    ctx = multiprocessing.get_context("forkserver" if os.name == "posix" else "spawn")
+    with cf.ProcessPoolExecutor(max_workers=workers or os.cpu_count() or 1, mp_context=ctx) as ex:
+        yield ex
+
+
+# ----------------------------------------------------------------------------------------------
+# Comparison
+# ----------------------------------------------------------------------------------------------
+
+#: Columns of the comparison table: key, header, unit.
+METRICS = (
+    ("success_rate", "success rate", ""),
+    ("time_to_goal", "time to goal", "s"),
+    ("final_error", "final error", "m"),
+    ("input_energy", "input energy", "unit^2 s"),
+    ("min_separation", "min separation", "m"),
+    ("planning_time_per_step", "planning time per step", "s"),
+    ("steerability", "worst-direction speed at start", "m/s"),
+)
+
+
+def steerability_at_start(scenario):
+    """Worst-direction speed (m/s) of all bodies together at their starts, or nan if unavailable."""
+    try:
+        from .steer import steerability  # noqa: PLC0415
+    except ImportError:
+        return float("nan"), None
+    try:
+        b = scenario.actuator.basis(scenario.bodies, scenario.medium, scenario.starts)
+        s = steerability(b, method="auto")
+    except Exception:  # noqa: BLE001 - a diagnostic column must not sink the comparison
+        return float("nan"), None
+    return float(s.speed), bool(s.steerable)
+
+
+def _task(scenario, seed, trials):
+    """One (variant, seed) run, reduced to plain numbers (cheap to send back from a worker)."""
+    try:
+        run = run_scenario(scenario, trials=trials, seed=seed)
+    except FieldplanError as exc:
+        return {"error": str(exc)}
+    agg = run.aggregate()
+    agg["plan_success"] = run.plan_success
+    agg["successes"] = sum(t.success for t in run.trials)
+    return agg
+
+
+@dataclass
+class Comparison:
+    """Rows of a comparison, one per variant, with per-seed runs kept.
+
+    Attributes
+    ----------
+    rows : list of dict
+        ``label``, ``actuator``, ``runs``, ``errors`` and, per metric in :data:`METRICS`, the mean
+        and standard deviation over runs (``<key>`` and ``<key>_sd``), SI.
+    runs : dict
+        label -> list of per-seed aggregate dicts.
+    """
+
+    rows: list
+    runs: dict
+
+    def to_csv(self):
+        """CSV text: one row per variant, SI units in the headers."""
+        buf = io.StringIO()
+        w = csv.writer(buf, lineterminator="\n")
+        head = ["variant", "actuator", "runs", "failed runs", "steerable at start"]
+        for key, title, unit in METRICS:
+            u = f" [{unit}]" if unit else ""
+            head += [f"{title}{u}", f"{title} sd{u}"] if key != "steerability" else [f"{title}{u}"]
+        w.writerow(head)
+        for r in self.rows:
+            line = [r["label"], r["actuator"], r["runs"], r["errors"], r.get("steerable", "")]
+            for key, _, _ in METRICS:
+                line += [_csv_num(r.get(key))] + ([_csv_num(r.get(key + "_sd"))] if key != "steerability" else [])
+            w.writerow(line)
+        return buf.getvalue()
+
+    def to_markdown(self):
+        """Markdown table with readable SI prefixes."""
+        head = ["variant", "actuator", "runs"] + [t for _, t, _ in METRICS]
+        lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+        for r in self.rows:
+            cells = [r["label"], r["actuator"], f"{r['runs']}" + (f" ({r['errors']} failed)" if r["errors"] else "")]
+            for key, _, unit in METRICS:
+                v = r.get(key)
+                sd = r.get(key + "_sd")
+                if key == "success_rate":
+                    cells.append("n/a" if _nan(v) else f"{100 * v:.0f} %")
+                elif key == "input_energy":
+                    cells.append("n/a" if _nan(v) else f"{v:.3g} {r.get('energy_unit', 'unit^2 s')}")
+                else:
+                    txt = format_si(v, unit)
+                    if not _nan(sd) and sd and key != "steerability":
+                        txt += f" ± {format_si(sd, unit)}"
+                    cells.append(txt)
+            lines.append("| " + " | ".join(cells) + " |")
+        lines.append("")
+        lines.append("Means over runs (± standard deviation); time to goal over successful runs only; "
+                     "input energy is the integral of the squared channel values summed over channels, in the "
+                     "channels' own units (compare it only between variants with the same channel units); "
+                     "worst-direction speed of all bodies together at their starts (fieldplan.steer).")
+        return "\n".join(lines)
+
+    def bar_chart(self):
+        """Figure with one panel per metric, one bar (with a standard-deviation whisker) per variant."""
+        import matplotlib.pyplot as plt  # noqa: PLC0415
+
+        keys = [m for m in METRICS if any(not _nan(r.get(m[0])) for r in self.rows)]
+        n = len(keys)
+        cols = min(3, max(n, 1))
+        rows = int(math.ceil(n / cols)) or 1
+        fig, axes = plt.subplots(rows, cols, figsize=(4.2 * cols, 3.4 * rows), squeeze=False)
+        labels = [r["label"] for r in self.rows]
+        colours = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+        for ax, (key, title, unit) in zip(axes.flat, keys):
+            vals = np.array([np.nan if _nan(r.get(key)) else r[key] for r in self.rows], dtype=float)
+            sds = np.array([0.0 if _nan(r.get(key + "_sd")) else r[key + "_sd"] for r in self.rows], dtype=float)
+            if key == "success_rate":
+                scale, ulabel = 100.0, "%"
+            else:
+                scale, ulabel = _prefix(np.nanmax(np.abs(vals)) if np.any(np.isfinite(vals)) else 1.0, unit)
+            x = np.arange(len(labels))
+            bars = ax.bar(x, np.nan_to_num(vals * scale), yerr=sds * scale, capsize=3,
+                          color=[colours[i % len(colours)] for i in range(len(labels))])
+            for i, v in enumerate(vals):
+                if not np.isfinite(v):
+                    ax.text(x[i], 0, "n/a", ha="center", va="bottom", fontsize=8)
+            ax.set_xticks(x, labels, rotation=20, ha="right", fontsize=8)
+            ax.set_title(title, fontsize=10)
+            ax.set_ylabel(f"{title} [{ulabel}]" if ulabel else title)
+            ax.grid(axis="y", alpha=0.3)
+            _ = bars
+        for ax in list(axes.flat)[n:]:
+            ax.set_visible(False)
+        handles = [plt.Rectangle((0, 0), 1, 1, color=colours[i % len(colours)]) for i in range(len(labels))]
+        fig.legend(handles, labels, loc="upper center", ncol=min(len(labels), 4), fontsize=8, frameon=False)
+        fig.tight_layout(rect=(0, 0, 1, 0.92))
+        return fig
+
+
+def _nan(v):
+    return v is None or (isinstance(v, float) and not math.isfinite(v))
+
+
+def _csv_num(v):
+    if v is None:
+        return ""
+    if isinstance(v, float) and not math.isfinite(v):
+        return "" if math.isnan(v) else repr(v)
+    return repr(float(v))
+
+
+_PREFIXES = ((1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M"))
+
+
+def _prefix(magnitude, unit):
+    """Scale factor and unit label so that ``magnitude * factor`` reads in [1, 1000)."""
+    if not unit or unit.startswith("unit") or not magnitude or not math.isfinite(magnitude):
+        return 1.0, unit
+    base, _, rest = unit.partition("/")
+    chosen = (1.0, "")
+    for f, p in _PREFIXES:
+        if magnitude >= f * 0.9999:
+            chosen = (f, p)
+    f, p = chosen
+    return 1.0 / f, p + base + (("/" + rest) if rest else "")
+
+
+def format_si(v, unit):
+    """``4.2e-06, "m"`` -> ``"4.2 µm"``; nan -> ``"n/a"``."""
+    if _nan(v):
+        return "n/a"
+    if v == 0:
+        return f"0 {unit}".strip()
+    f, u = _prefix(abs(v), unit)
+    return f"{v * f:.3g} {u}".strip()
+
+
+def compare(scenarios, *, seeds=(0,), trials=1, executor=None, progress=False):
+    """Run every scenario (variant) for every seed and tabulate the metrics.
+
+    Parameters
+    ----------
+    scenarios : sequence of Scenario
+        The variants (labels from ``Scenario.name``; make them unique).
+    seeds : sequence of int
+        Each variant is planned and simulated once per seed (trials ``seed, seed+1, ...``).
+    trials : int
+        Trials per (variant, seed).
+    executor : concurrent.futures.Executor, optional
+        Default :class:`InlineExecutor` (this process).
+    progress : bool
+        tqdm bar over runs.
+
+    Returns
+    -------
+    Comparison
+    """
+    scenarios = list(scenarios)
+    names = [s.name for s in scenarios]
+    if len(set(names)) != len(names):
+        raise FieldplanError(f"comparison labels must be unique, got {names}.")
+    ex = executor if executor is not None else InlineExecutor()
+    futures = {}
+    for s in scenarios:
+        for seed in seeds:
+            futures[ex.submit(_task, s, int(seed), int(trials))] = (s.name, int(seed))
+    results = {s.name: [] for s in scenarios}
+    for fut in _progress(cf.as_completed(futures), len(futures), progress, "runs"):
+        label, seed = futures[fut]
+        try:
+            res = fut.result()
+        except Exception as exc:  # noqa: BLE001 - one broken variant is reported in its row
+            res = {"error": f"{type(exc).__name__}: {exc}"}
+        res["seed"] = seed
+        results[label].append(res)
+    rows = []
+    for s in scenarios:
+        runs = sorted(results[s.name], key=lambda r: r["seed"])
+        ok = [r for r in runs if "error" not in r]
+        row = {"label": s.name, "actuator": type(s.actuator).__name__, "runs": len(runs),
+               "errors": len(runs) - len(ok), "error_messages": [r["error"] for r in runs if "error" in r]}
+        units = sorted({c.unit for c in s.actuator.channels})
+        row["energy_unit"] = f"{units[0]}^2 s" if len(units) == 1 else "mixed units"
+        for key, _, _ in METRICS:
+            if key == "steerability":
+                continue
+            vals = np.array([r.get(key, np.nan) if r.get(key) is not None else np.nan for r in ok], dtype=float)
+            finite = vals[np.isfinite(vals)]
+            if key == "min_separation":
+                row[key] = float(finite.min()) if finite.size else float("nan")
+                row[key + "_sd"] = float("nan")
+                continue
+            row[key] = float(finite.mean()) if finite.size else float("nan")
+            row[key + "_sd"] = float(finite.std()) if finite.size > 1 else float("nan")
+        row["steerability"], row["steerable"] = steerability_at_start(s)
+        rows.append(row)
+    return Comparison(rows, results)
