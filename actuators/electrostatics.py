@@ -1,0 +1,1102 @@
+"""Quasi-static potential of a planar electrode pattern on the chip floor, in the half-space above it.
+
+The chain, each step a plain function or small class over arrays:
+
+1. :class:`ElectrodeLayout` - electrodes as shapely polygons on the floor (``z = 0``), metres, with
+   helpers for the common patterns (:func:`pad_array`, :func:`interdigitated`,
+   :func:`finger_array`, :func:`quadrupole`).
+2. :class:`Grid` and :class:`FloorSolver` - the floor potential on a regular grid. Electrode nodes
+   hold their voltage. **Stated approximation for the bare floor between electrodes:** it is
+   filled by the solution of the two-dimensional Laplace equation in the floor plane, with the
+   electrodes as Dirichlet data and 0 V on the edge of the grid window (the reference potential
+   far from the array; ``periodic=True`` wraps instead). Across a straight gap this gives the
+   linear gap profile; the exact mixed boundary-value problem of an insulating floor (no normal
+   current) gives a steeper, arcsine-like profile near the edges, so fields closer to the floor than
+   about one gap width are approximate (typically tens of percent right at the edges, a few
+   percent at heights of a gap width and more).
+3. :func:`half_space_fields` - the potential above the floor from the half-space Fourier solution
+   of Laplace's equation with Dirichlet data on ``z = 0``: ``phi_hat(k, z) = phi_hat_0(k) exp(-|k| z)``,
+   on a zero-padded grid (FFT), with gradient and Hessian by spectral differentiation.
+4. :class:`UnitResponses` - one floor solution and one set of height maps per electrode at 1 V
+   (superposition holds because every step is linear in the electrode voltages), cached in memory
+   and on disk, keyed by a hash of layout, grid, padding and height.
+5. :class:`SplineMaps` - cubic B-spline interpolation of stacks of maps at arbitrary points,
+   vectorised over maps and points.
+
+Quasi-statics hold for the drive frequencies of dielectrophoresis (10 kHz-10 MHz): the
+wavelength is metres while the chip is millimetres, and a homogeneous medium has the same
+Laplace equation for conduction and displacement currents, so the field pattern does not depend
+on frequency. Electrode polarisation (the double layer) is not modelled.
+"""
+
+from __future__ import annotations
+
+import collections
+import hashlib
+import json
+import os
+import tempfile
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import NamedTuple
+
+import numpy as np
+import scipy.fft
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+import shapely
+from scipy import ndimage
+from shapely.geometry import MultiPolygon, Polygon, box
+from shapely.validation import explain_validity
+
+from fieldplan.errors import ActuatorError
+
+__all__ = [
+    "ElectrodeLayout",
+    "pad_array",
+    "interdigitated",
+    "finger_array",
+    "quadrupole",
+    "layout_from_spec",
+    "Grid",
+    "FloorSolver",
+    "HalfSpaceField",
+    "half_space_fields",
+    "square_field_gradient",
+    "UnitResponses",
+    "SplineMaps",
+    "CacheWarning",
+    "clear_memory_cache",
+    "GRADIENT_COMPONENTS",
+    "HESSIAN_COMPONENTS",
+]
+
+#: Order of the gradient components in every ``gradient`` array.
+GRADIENT_COMPONENTS = ("x", "y", "z")
+#: Order of the (independent) second derivatives in every ``hessian`` array; ``zz = -(xx + yy)``.
+HESSIAN_COMPONENTS = ("xx", "xy", "xz", "yy", "yz")
+
+# Bumped whenever the meaning of a cached array changes, so old cache files are never reused.
+_SCHEMA = "fieldplan-electrostatics-1"
+
+
+class CacheWarning(UserWarning):
+    """The on-disk cache of unit responses could not be read or written (results are still correct)."""
+
+
+# ------------------------------------------------------------------------------------------------
+# Layouts
+# ------------------------------------------------------------------------------------------------
+class ElectrodeLayout:
+    """Named electrodes on the floor plane ``z = 0``.
+
+    Parameters
+    ----------
+    electrodes : dict of str to shapely Polygon/MultiPolygon, or sequence of them
+        Electrode shapes, coordinates in m. A sequence is named ``e0, e1, ...``.
+    names : sequence of str, optional
+        Names for a sequence of electrodes.
+
+    Raises
+    ------
+    ActuatorError
+        A shape that is not a polygon, is empty, self-intersecting (invalid) or has zero area;
+        two electrodes that overlap or touch (they would short); duplicate or reserved names.
+
+    Examples
+    --------
+    >>> from shapely.geometry import box
+    >>> lay = ElectrodeLayout({"left": box(-60e-6, 0, -10e-6, 50e-6), "right": box(10e-6, 0, 60e-6, 50e-6)})
+    >>> lay.names, round(lay.min_gap * 1e6, 6)
+    (('left', 'right'), 20.0)
+    """
+
+    #: Names an electrode may not take (the actuator uses them for other channels).
+    RESERVED = ("frequency",)
+
+    def __init__(self, electrodes, names=None):
+        if isinstance(electrodes, dict):
+            if names is not None:
+                raise ActuatorError("ElectrodeLayout: give names either as dict keys or as names=, not both.")
+            names = list(electrodes.keys())
+            shapes = list(electrodes.values())
+        else:
+            shapes = list(electrodes)
+            names = [f"e{k}" for k in range(len(shapes))] if names is None else list(names)
+        if not shapes:
+            raise ActuatorError("ElectrodeLayout: at least one electrode is needed, got none.")
+        if len(names) != len(shapes):
+            raise ActuatorError(f"ElectrodeLayout: {len(names)} names for {len(shapes)} electrodes.")
+        for n in names:
+            if not isinstance(n, str) or not n:
+                raise ActuatorError(f"ElectrodeLayout: electrode names must be non-empty strings, got {n!r}.")
+            if n in self.RESERVED:
+                raise ActuatorError(f"ElectrodeLayout: electrode name {n!r} is reserved; choose another.")
+        if len(set(names)) != len(names):
+            dup = sorted({n for n in names if names.count(n) > 1})
+            raise ActuatorError(f"ElectrodeLayout: electrode names must be unique, repeated: {dup}.")
+        polys = []
+        for n, g in zip(names, shapes):
+            if not isinstance(g, (Polygon, MultiPolygon)):
+                raise ActuatorError(
+                    f"ElectrodeLayout: electrode {n!r} must be a shapely Polygon or MultiPolygon (m), "
+                    f"got {type(g).__name__}."
+                )
+            if g.is_empty or not np.all(np.isfinite(shapely.get_coordinates(g))):
+                raise ActuatorError(f"ElectrodeLayout: electrode {n!r} is empty or has non-finite coordinates.")
+            if not g.is_valid:
+                raise ActuatorError(
+                    f"ElectrodeLayout: electrode {n!r} is not a valid polygon ({explain_validity(g)}); "
+                    "a self-intersecting outline has no well-defined area - redraw it without crossings."
+                )
+            if not g.area > 0:
+                raise ActuatorError(f"ElectrodeLayout: electrode {n!r} has zero area.")
+            polys.append(shapely.normalize(g))
+        for i in range(len(polys)):
+            for j in range(i + 1, len(polys)):
+                a, b = polys[i], polys[j]
+                if a.intersects(b):
+                    what = "overlap" if a.intersection(b).area > 0 else "touch"
+                    raise ActuatorError(
+                        f"ElectrodeLayout: electrodes {names[i]!r} and {names[j]!r} {what}; electrodes at "
+                        "different voltages must be separated by a gap > 0 (merge them into one "
+                        "polygon if they are meant to be one electrode)."
+                    )
+        self.names = tuple(names)
+        self.polygons = tuple(polys)
+
+    def __len__(self):
+        return len(self.polygons)
+
+    def __repr__(self):
+        return f"ElectrodeLayout({len(self)} electrodes: {', '.join(self.names[:6])}{'...' if len(self) > 6 else ''})"
+
+    def __eq__(self, other):
+        return isinstance(other, ElectrodeLayout) and self.key() == other.key()
+
+    def __hash__(self):
+        return hash(self.key())
+
+    @property
+    def bounds(self):
+        """(xmin, ymin, xmax, ymax) of all electrodes, m."""
+        return tuple(float(v) for v in shapely.total_bounds(list(self.polygons)))
+
+    @property
+    def min_gap(self):
+        """Smallest distance between two electrodes, m (``inf`` for a single electrode)."""
+        d = self.distances()
+        return float(np.min(d[np.triu_indices(len(self), 1)])) if len(self) > 1 else float("inf")
+
+    def distances(self):
+        """Pairwise electrode distances, shape (K, K), m (zero on the diagonal)."""
+        k = len(self)
+        d = np.zeros((k, k))
+        for i in range(k):
+            d[i, i + 1:] = shapely.distance(self.polygons[i], list(self.polygons[i + 1:]))
+        return d + d.T
+
+    def neighbours(self, factor=1.2):
+        """Pairs ``(i, j)``, ``i < j``, closer than ``factor`` times the smallest gap of each electrode."""
+        d = self.distances()
+        k = len(self)
+        if k < 2:
+            return []
+        dd = d + np.diag(np.full(k, np.inf))
+        nearest = dd.min(axis=1)
+        return [(i, j) for i in range(k) for j in range(i + 1, k)
+                if d[i, j] <= factor * min(nearest[i], nearest[j]) * (1 + 1e-9)]
+
+    def key(self):
+        """Stable text identifying the geometry (names and normalised WKB), for cache keys."""
+        parts = [f"{n}:{shapely.to_wkb(p, hex=True, output_dimension=2)}" for n, p in zip(self.names, self.polygons)]
+        return "|".join(parts)
+
+    def index(self, name):
+        """Position of electrode ``name`` in :attr:`names`."""
+        try:
+            return self.names.index(name)
+        except ValueError:
+            raise ActuatorError(f"no electrode named {name!r}; electrodes are {list(self.names)}.") from None
+
+
+def _positive_length(name, value):
+    v = float(value)
+    if not (np.isfinite(v) and v > 0):
+        raise ActuatorError(f"{name} must be a finite length > 0 m, got {value!r}.")
+    return v
+
+
+def _count(name, value, minimum=1):
+    if isinstance(value, bool) or int(value) != value or int(value) < minimum:
+        raise ActuatorError(f"{name} must be an integer >= {minimum}, got {value!r}.")
+    return int(value)
+
+
+def pad_array(rows, cols, pad, gap, center=(0.0, 0.0)):
+    """A ``rows x cols`` grid of square pads, each its own electrode.
+
+    Parameters
+    ----------
+    rows, cols : int
+    pad : float
+        Pad side, m (10-200 um in practice).
+    gap : float
+        Edge-to-edge spacing between neighbouring pads, m (5-50 um).
+    center : (float, float)
+        Centre of the array, m.
+
+    Returns
+    -------
+    ElectrodeLayout
+        Electrodes ``pad_<row>_<col>``, row 0 at the bottom (smallest y), column 0 at the left.
+
+    Examples
+    --------
+    >>> lay = pad_array(2, 3, 50e-6, 20e-6)
+    >>> lay.names[:2], len(lay)
+    (('pad_0_0', 'pad_0_1'), 6)
+    """
+    rows, cols = _count("pad_array rows", rows), _count("pad_array cols", cols)
+    pad, gap = _positive_length("pad_array pad", pad), _positive_length("pad_array gap", gap)
+    pitch = pad + gap
+    x0 = center[0] - (cols * pad + (cols - 1) * gap) / 2
+    y0 = center[1] - (rows * pad + (rows - 1) * gap) / 2
+    shapes = {}
+    for r in range(rows):
+        for c in range(cols):
+            x, y = x0 + c * pitch, y0 + r * pitch
+            shapes[f"pad_{r}_{c}"] = box(x, y, x + pad, y + pad)
+    return ElectrodeLayout(shapes)
+
+
+def finger_array(n_fingers, finger_width, gap, finger_length, center=(0.0, 0.0)):
+    """Parallel bars along y, each its own electrode (an addressable finger array).
+
+    Parameters
+    ----------
+    n_fingers : int
+    finger_width, gap, finger_length : float
+        m.
+    center : (float, float)
+        m.
+
+    Returns
+    -------
+    ElectrodeLayout
+        Electrodes ``finger_<k>``, k = 0 at the left.
+    """
+    n = _count("finger_array n_fingers", n_fingers)
+    w = _positive_length("finger_array finger_width", finger_width)
+    g = _positive_length("finger_array gap", gap)
+    length = _positive_length("finger_array finger_length", finger_length)
+    x0 = center[0] - (n * w + (n - 1) * g) / 2
+    y0 = center[1] - length / 2
+    return ElectrodeLayout({f"finger_{k}": box(x0 + k * (w + g), y0, x0 + k * (w + g) + w, y0 + length)
+                            for k in range(n)})
+
+
+def interdigitated(n_fingers, finger_width, gap, finger_length, bus_width=None, center=(0.0, 0.0)):
+    """Two interleaved combs (the classical interdigitated electrode), fingers along y.
+
+    Comb ``comb_a`` has its bus bar at the bottom and fingers 0, 2, 4, ...; ``comb_b`` has its bus
+    at the top and fingers 1, 3, .... Each finger tip clears the opposite bus bar by ``gap``.
+
+    Parameters
+    ----------
+    n_fingers : int
+        Total number of fingers, >= 2.
+    finger_width, gap, finger_length : float
+        m; ``gap`` is both the finger-to-finger spacing and the tip-to-bus clearance.
+    bus_width : float, optional
+        m; default ``finger_width``.
+    center : (float, float)
+        Centre of the finger region, m.
+
+    Returns
+    -------
+    ElectrodeLayout
+    """
+    n = _count("interdigitated n_fingers", n_fingers, minimum=2)
+    w = _positive_length("interdigitated finger_width", finger_width)
+    g = _positive_length("interdigitated gap", gap)
+    length = _positive_length("interdigitated finger_length", finger_length)
+    bw = w if bus_width is None else _positive_length("interdigitated bus_width", bus_width)
+    span = n * w + (n - 1) * g
+    x0 = center[0] - span / 2
+    ybot = center[1] - (length + g) / 2       # fingers of comb a run from here up to ybot + length
+    ytop = ybot + length + g                  # fingers of comb b run from ytop - length up to here
+    a = [box(x0, ybot - bw, x0 + span, ybot)]
+    b = [box(x0, ytop, x0 + span, ytop + bw)]
+    for k in range(n):
+        x = x0 + k * (w + g)
+        if k % 2 == 0:
+            a.append(box(x, ybot - bw / 2, x + w, ybot + length))
+        else:
+            b.append(box(x, ytop - length, x + w, ytop + bw / 2))
+    return ElectrodeLayout({"comb_a": shapely.unary_union(a), "comb_b": shapely.unary_union(b)})
+
+
+def quadrupole(centre_gap, arm_length, center=(0.0, 0.0)):
+    """Four wedge electrodes around a centre (east, north, west, south), a classical DEP trap.
+
+    Each electrode is a right-angled wedge with its tip on an axis at ``centre_gap / 2`` from the
+    centre; neighbouring wedges have parallel edges ``centre_gap / sqrt(2)`` apart. Wedge tips
+    approximate the hyperbolic tips of a polynomial quadrupole near the centre.
+
+    Parameters
+    ----------
+    centre_gap : float
+        Distance between opposite tips, m.
+    arm_length : float
+        Radial extent of each wedge beyond its tip, m.
+    center : (float, float)
+        m.
+
+    Returns
+    -------
+    ElectrodeLayout
+        Electrodes ``quad_e``, ``quad_n``, ``quad_w``, ``quad_s``.
+    """
+    r0 = _positive_length("quadrupole centre_gap", centre_gap) / 2
+    L = _positive_length("quadrupole arm_length", arm_length)
+    cx, cy = center
+    east = Polygon([(r0, 0.0), (r0 + L, L), (r0 + L, -L)])
+    shapes = {}
+    for name, angle in (("quad_e", 0), ("quad_n", 90), ("quad_w", 180), ("quad_s", 270)):
+        g = shapely.affinity.rotate(east, angle, origin=(0, 0))
+        shapes[name] = shapely.affinity.translate(g, cx, cy)
+    return ElectrodeLayout(shapes)
+
+
+_SPEC_BUILDERS = {"pad_array": pad_array, "interdigitated": interdigitated, "finger_array": finger_array,
+                  "quadrupole": quadrupole}
+
+
+def layout_from_spec(spec):
+    """Build a layout from plain data (scenario files): ``{"pad_array": {"rows": 4, ...}}``.
+
+    Parameters
+    ----------
+    spec : ElectrodeLayout or dict
+        Either one key among ``pad_array``, ``interdigitated``, ``finger_array``, ``quadrupole``
+        mapping to that helper's keyword arguments (lengths as SI numbers or unit strings), or
+        ``{"electrodes": {name: [[x, y], ...], ...}}`` with polygon vertices in m.
+
+    Examples
+    --------
+    >>> len(layout_from_spec({"pad_array": {"rows": 2, "cols": 2, "pad": "50 um", "gap": "20 um"}}))
+    4
+    """
+    from fieldplan.units import to_si
+
+    if isinstance(spec, ElectrodeLayout):
+        return spec
+    if not isinstance(spec, dict) or len(spec) != 1:
+        raise ActuatorError(
+            f"layout spec must be a dict with exactly one key among {sorted(_SPEC_BUILDERS) + ['electrodes']}, "
+            f"got {spec!r}."
+        )
+    (kind, args), = spec.items()
+    if kind == "electrodes":
+        if not isinstance(args, dict):
+            raise ActuatorError("layout spec 'electrodes' must map names to vertex lists [[x, y], ...] in m.")
+        shapes = {}
+        for n, pts in args.items():
+            try:
+                shapes[n] = Polygon(np.asarray(pts, dtype=float))
+            except (ValueError, TypeError) as exc:
+                raise ActuatorError(f"layout spec electrode {n!r}: vertices must be [[x, y], ...] in m ({exc}).") from None
+        return ElectrodeLayout(shapes)
+    if kind not in _SPEC_BUILDERS:
+        raise ActuatorError(f"unknown layout kind {kind!r}; known: {sorted(_SPEC_BUILDERS) + ['electrodes']}.")
+    import inspect
+
+    params = inspect.signature(_SPEC_BUILDERS[kind]).parameters
+    unknown = set(args) - set(params)
+    if unknown:
+        raise ActuatorError(f"layout spec {kind}: unknown keys {sorted(unknown)}; allowed: {list(params)}.")
+    kw = {}
+    for k, v in args.items():
+        if k in ("rows", "cols", "n_fingers"):
+            kw[k] = v
+        elif k == "center":
+            kw[k] = tuple(to_si(c, "m", f"{kind}.center") for c in v)
+        else:
+            kw[k] = to_si(v, "m", f"{kind}.{k}")
+    return _SPEC_BUILDERS[kind](**kw)
+
+
+# ------------------------------------------------------------------------------------------------
+# Grid and floor potential
+# ------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Grid:
+    """Regular grid of floor nodes ``x_i = xmin + i dx``, ``y_j = ymin + j dy``.
+
+    Parameters
+    ----------
+    xmin, ymin : float
+        m, position of node (0, 0).
+    dx, dy : float
+        Node spacing, m.
+    nx, ny : int
+        Number of nodes.
+    periodic : bool
+        If True the window is one period of an infinite pattern (period ``nx dx`` by ``ny dy``);
+        otherwise the floor outside the window is at 0 V.
+    """
+
+    xmin: float
+    ymin: float
+    dx: float
+    dy: float
+    nx: int
+    ny: int
+    periodic: bool = False
+
+    def __post_init__(self):
+        for k in ("dx", "dy"):
+            _positive_length(f"Grid {k}", getattr(self, k))
+        for k in ("nx", "ny"):
+            _count(f"Grid {k}", getattr(self, k), minimum=4)
+        for k in ("xmin", "ymin", "dx", "dy"):
+            object.__setattr__(self, k, float(getattr(self, k)))
+        object.__setattr__(self, "nx", int(self.nx))
+        object.__setattr__(self, "ny", int(self.ny))
+        object.__setattr__(self, "periodic", bool(self.periodic))
+
+    @classmethod
+    def around(cls, layout, points=128, margin=None):
+        """A square-spaced grid covering ``layout`` plus ``margin`` on every side.
+
+        Parameters
+        ----------
+        layout : ElectrodeLayout
+        points : int
+            Nodes along the longer side of the window.
+        margin : float, optional
+            Bare floor between the electrodes and the 0 V window edge, m. Default a quarter of the
+            layout's larger side: the field near the outer electrodes then depends little on it.
+        """
+        points = _count("grid points", points, minimum=8)
+        x0, y0, x1, y1 = layout.bounds
+        span = max(x1 - x0, y1 - y0)
+        m = 0.25 * span if margin is None else float(margin)
+        if not (np.isfinite(m) and m >= 0):
+            raise ActuatorError(f"grid margin must be a finite length >= 0 m, got {margin!r}.")
+        x0, y0, x1, y1 = x0 - m, y0 - m, x1 + m, y1 + m
+        h = max(x1 - x0, y1 - y0) / (points - 1)
+        nx = int(np.ceil((x1 - x0) / h - 1e-9)) + 1
+        ny = int(np.ceil((y1 - y0) / h - 1e-9)) + 1
+        # Centre the node lattice on the padded bounds.
+        xs = 0.5 * (x0 + x1) - 0.5 * (nx - 1) * h
+        ys = 0.5 * (y0 + y1) - 0.5 * (ny - 1) * h
+        return cls(xs, ys, h, h, max(nx, 4), max(ny, 4), False)
+
+    @classmethod
+    def cell(cls, extent, nx, ny):
+        """A periodic grid whose window ``(xmin, xmax, ymin, ymax)`` is one period."""
+        x0, x1, y0, y1 = (float(v) for v in extent)
+        if not (x1 > x0 and y1 > y0):
+            raise ActuatorError(f"periodic cell extent must have xmax > xmin and ymax > ymin, got {extent}.")
+        return cls(x0, y0, (x1 - x0) / nx, (y1 - y0) / ny, nx, ny, True)
+
+    @property
+    def x(self):
+        """Node x coordinates, shape (nx,), m."""
+        return self.xmin + self.dx * np.arange(self.nx)
+
+    @property
+    def y(self):
+        """Node y coordinates, shape (ny,), m."""
+        return self.ymin + self.dy * np.arange(self.ny)
+
+    @property
+    def shape(self):
+        """(ny, nx): arrays on the grid are indexed ``[j, i]`` (y first)."""
+        return (self.ny, self.nx)
+
+    @property
+    def spacing(self):
+        """(dx, dy), m."""
+        return (self.dx, self.dy)
+
+    @property
+    def extent(self):
+        """(xmin, xmax, ymin, ymax) of the region where maps are defined, m."""
+        if self.periodic:
+            return (self.xmin, self.xmin + self.nx * self.dx, self.ymin, self.ymin + self.ny * self.dy)
+        return (self.xmin, self.xmin + (self.nx - 1) * self.dx, self.ymin, self.ymin + (self.ny - 1) * self.dy)
+
+    def key(self):
+        """Stable text identifying the grid, for cache keys."""
+        return json.dumps([repr(self.xmin), repr(self.ymin), repr(self.dx), repr(self.dy), self.nx, self.ny,
+                           self.periodic])
+
+
+class FloorSolver:
+    """Floor potential of a layout on a grid, linear in the electrode voltages.
+
+    Electrode nodes (those covered by an electrode polygon, boundary included) hold the electrode's
+    voltage; the other nodes solve the 5-point discrete Laplace equation (see the module docstring
+    for the approximation this is). One sparse LU factorisation serves every voltage vector.
+
+    Parameters
+    ----------
+    layout : ElectrodeLayout
+    grid : Grid
+
+    Raises
+    ------
+    ActuatorError
+        An electrode covers no grid node (grid too coarse), two electrodes claim the same node,
+        or (non-periodic) an electrode reaches outside the grid window.
+    """
+
+    def __init__(self, layout, grid):
+        self.layout = layout
+        self.grid = grid
+        self.labels = self._rasterise()
+        self._lu = None
+        self._b = None
+
+    def _rasterise(self):
+        g = self.grid
+        X, Y = np.meshgrid(g.x, g.y)
+        labels = np.full(g.shape, -1, dtype=np.int32)
+        count = np.zeros(g.shape, dtype=np.int32)
+        # A node exactly on an electrode edge belongs to it; the tiny buffer absorbs float round-off.
+        eps = 1e-6 * min(g.dx, g.dy)
+        x0, x1, y0, y1 = g.extent
+        window = box(x0 - eps, y0 - eps, x1 + eps, y1 + eps)
+        for k, (name, poly) in enumerate(zip(self.layout.names, self.layout.polygons)):
+            if not g.periodic and not window.contains(poly):
+                raise ActuatorError(
+                    f"electrode {name!r} reaches outside the grid window {tuple(round(v, 9) for v in g.extent)} m; "
+                    "enlarge the grid (margin) so every electrode lies inside it."
+                )
+            shape = poly.buffer(eps)
+            if g.periodic:
+                # Wrap parts that lie outside the periodic cell back into it.
+                px, py = g.nx * g.dx, g.ny * g.dy
+                shape = shapely.unary_union([shapely.affinity.translate(shape, a * px, b * py)
+                                             for a in (-1, 0, 1) for b in (-1, 0, 1)])
+            shapely.prepare(shape)
+            m = shapely.intersects_xy(shape, X, Y)
+            if not m.any():
+                raise ActuatorError(
+                    f"electrode {name!r} covers no grid node (grid spacing {g.dx:.3g} m); refine the grid "
+                    "so that every electrode spans at least a few nodes."
+                )
+            labels[m] = k
+            count += m
+        if np.any(count > 1):
+            raise ActuatorError(
+                "two electrodes claim the same grid node: their gap is below the grid spacing "
+                f"({g.dx:.3g} m); refine the grid."
+            )
+        # Neighbouring nodes on two different electrodes leave no gap node between them: the gap
+        # would be modelled as one grid spacing wide whatever its true width.
+        for a, b in ((labels[:, 1:], labels[:, :-1]), (labels[1:, :], labels[:-1, :])):
+            clash = (a >= 0) & (b >= 0) & (a != b)
+            if np.any(clash):
+                k1, k2 = int(a[clash][0]), int(b[clash][0])
+                raise ActuatorError(
+                    f"electrodes {self.layout.names[k1]!r} and {self.layout.names[k2]!r} sit on neighbouring grid "
+                    f"nodes with no gap node between them: their gap is not resolved by the grid spacing "
+                    f"{g.dx:.3g} m; refine the grid (more points) to at least a few nodes per gap."
+                )
+        return labels
+
+    def _factorise(self):
+        g = self.grid
+        ny, nx = g.shape
+        lab = self.labels.ravel()
+        free = lab < 0
+        nfree = int(free.sum())
+        index = np.full(lab.size, -1, dtype=np.int64)
+        index[free] = np.arange(nfree)
+        jj, ii = np.divmod(np.arange(lab.size), nx)
+        rows, cols, vals = [], [], []
+        brow, bcol, bval = [], [], []
+        wx, wy = 1.0 / g.dx**2, 1.0 / g.dy**2
+        fnode = np.flatnonzero(free)
+        fi, fj = ii[fnode], jj[fnode]
+        diag = np.full(nfree, -2.0 * (wx + wy))
+        for di, dj, w in ((1, 0, wx), (-1, 0, wx), (0, 1, wy), (0, -1, wy)):
+            ni, nj = fi + di, fj + dj
+            if g.periodic:
+                ni, nj = ni % nx, nj % ny
+                inside = np.ones(nfree, dtype=bool)
+            else:
+                # Outside the window the floor is at 0 V: the neighbour contributes nothing.
+                inside = (ni >= 0) & (ni < nx) & (nj >= 0) & (nj < ny)
+            nb = np.where(inside, nj * nx + ni, 0)
+            nb_lab = np.where(inside, lab[nb], -2)
+            unk = inside & (nb_lab == -1)
+            rows.append(index[fnode[unk]])
+            cols.append(index[nb[unk]])
+            vals.append(np.full(int(unk.sum()), w))
+            ele = inside & (nb_lab >= 0)
+            brow.append(index[fnode[ele]])
+            bcol.append(nb_lab[ele])
+            bval.append(np.full(int(ele.sum()), w))
+        rows.append(np.arange(nfree))
+        cols.append(np.arange(nfree))
+        vals.append(diag)
+        A = sp.csc_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
+                          shape=(nfree, nfree))
+        B = sp.csr_matrix((np.concatenate(bval), (np.concatenate(brow), np.concatenate(bcol))),
+                          shape=(nfree, len(self.layout)))
+        self._free = free
+        self._b = B
+        self._lu = spla.splu(A) if nfree else None
+
+    def solve(self, voltages):
+        """Floor potential for electrode voltages.
+
+        Parameters
+        ----------
+        voltages : array_like, shape (K,) or (M, K)
+            V, one per electrode (layout order).
+
+        Returns
+        -------
+        ndarray, shape (ny, nx) or (M, ny, nx)
+            V on the grid nodes.
+        """
+        v = np.asarray(voltages, dtype=float)
+        single = v.ndim == 1
+        v = np.atleast_2d(v)
+        if v.shape[1] != len(self.layout) or v.ndim != 2:
+            raise ActuatorError(f"voltages must have shape (K,) or (M, K) with K = {len(self.layout)}, got {v.shape}.")
+        if self._b is None:
+            self._factorise()
+        lab = self.labels.ravel()
+        out = np.zeros((len(v), lab.size))
+        ele = lab >= 0
+        out[:, ele] = v[:, lab[ele]]
+        if self._lu is not None:
+            rhs = -(self._b @ v.T)
+            out[:, self._free] = np.asarray(self._lu.solve(np.ascontiguousarray(rhs))).reshape(-1, len(v)).T
+        out = out.reshape((len(v),) + self.grid.shape)
+        return out[0] if single else out
+
+    def unit_responses(self):
+        """Floor potential of each electrode at 1 V with all others at 0 V, shape (K, ny, nx), V."""
+        return self.solve(np.eye(len(self.layout)))
+
+
+# ------------------------------------------------------------------------------------------------
+# Half-space solution
+# ------------------------------------------------------------------------------------------------
+class HalfSpaceField(NamedTuple):
+    """Potential and its derivatives at one height; ``None`` for parts not asked for."""
+
+    potential: np.ndarray | None   #: (..., ny, nx), V
+    gradient: np.ndarray | None    #: (..., 3, ny, nx), V/m: d/dx, d/dy, d/dz of the potential
+    hessian: np.ndarray | None     #: (..., 5, ny, nx), V/m^2: xx, xy, xz, yy, yz
+
+
+def _padded_shape(shape, pad):
+    ny, nx = shape
+    if pad == 0:
+        return ny, nx
+    return (scipy.fft.next_fast_len(int(ny * (1 + pad)), real=True),
+            scipy.fft.next_fast_len(int(nx * (1 + pad)), real=True))
+
+
+def _wavenumbers(shape, spacing):
+    ny, nx = shape
+    dx, dy = spacing
+    kx = 2 * np.pi * scipy.fft.rfftfreq(nx, dx)
+    ky = 2 * np.pi * scipy.fft.fftfreq(ny, dy)
+    # Odd derivatives of the Nyquist mode have no real representation on the grid: drop them.
+    kx_odd = kx.copy()
+    if nx % 2 == 0:
+        kx_odd[-1] = 0.0
+    ky_odd = ky.copy()
+    if ny % 2 == 0:
+        ky_odd[ny // 2] = 0.0
+    KX, KY = kx[None, :], ky[:, None]
+    return KX, KY, kx_odd[None, :], ky_odd[:, None], np.sqrt(KX**2 + KY**2)
+
+
+def half_space_fields(phi0, spacing, z, *, pad=1, potential=False, gradient=True, hessian=True, workers=None,
+                      _spectrum=None):
+    """Potential above the floor from its values on the floor (Dirichlet data), by FFT.
+
+    Solves Laplace's equation in ``z > 0`` with ``phi(x, y, 0) = phi0`` and decay as ``z -> inf``:
+    ``phi_hat(k, z) = phi_hat_0(k) exp(-|k| z)`` (the textbook half-space Fourier solution).
+    Derivatives are spectral: ``d/dx -> i k_x``, ``d/dz -> -|k|``.
+
+    Parameters
+    ----------
+    phi0 : array_like, shape (..., ny, nx)
+        Floor potential on grid nodes, V.
+    spacing : float or (float, float)
+        Node spacing (dx, dy), m.
+    z : float
+        Height above the floor, m, >= 0.
+    pad : int
+        Zero-padding factor: the grid is extended to about ``(1 + pad)`` times its size with 0 V
+        before the FFT, so the periodic images of the window are far away. ``pad=0`` treats
+        ``phi0`` as one period of a periodic pattern (exact for periodic data).
+    potential, gradient, hessian : bool
+        Which parts to compute.
+
+    Returns
+    -------
+    HalfSpaceField
+        Arrays on the original (unpadded) window.
+
+    Examples
+    --------
+    >>> n, L = 64, 1e-4
+    >>> x = np.arange(n) * L / n
+    >>> phi0 = np.tile(np.cos(2 * np.pi * x / L), (4, 1))
+    >>> out = half_space_fields(phi0, (L / n, L / 4), 1e-5, pad=0, potential=True, hessian=False)
+    >>> bool(np.allclose(out.potential, phi0 * np.exp(-2 * np.pi / L * 1e-5)))
+    True
+    """
+    phi0 = np.asarray(phi0, dtype=float)
+    if phi0.ndim < 2:
+        raise ActuatorError(f"phi0 must have shape (..., ny, nx), got {phi0.shape}.")
+    dx, dy = (float(spacing), float(spacing)) if np.ndim(spacing) == 0 else (float(spacing[0]), float(spacing[1]))
+    z = float(z)
+    if not (np.isfinite(z) and z >= 0):
+        raise ActuatorError(f"height z must be a finite number >= 0 m, got {z!r}.")
+    if int(pad) != pad or pad < 0:
+        raise ActuatorError(f"pad must be an integer >= 0, got {pad!r}.")
+    ny, nx = phi0.shape[-2:]
+    Ny, Nx = _padded_shape((ny, nx), int(pad))
+    spec = _spectrum if _spectrum is not None else scipy.fft.rfft2(phi0, s=(Ny, Nx), workers=workers)
+    KX, KY, KXo, KYo, K = _wavenumbers((Ny, Nx), (dx, dy))
+    damp = np.exp(-K * z)
+    base = spec * damp
+
+    def back(mult):
+        return scipy.fft.irfft2(base * mult, s=(Ny, Nx), workers=workers)[..., :ny, :nx]
+
+    lead = phi0.shape[:-2]
+    pot = back(1.0) if potential else None
+    grad = hess = None
+    if gradient:
+        grad = np.empty(lead + (3, ny, nx))
+        grad[..., 0, :, :] = back(1j * KXo)
+        grad[..., 1, :, :] = back(1j * KYo)
+        grad[..., 2, :, :] = back(-K)
+    if hessian:
+        hess = np.empty(lead + (5, ny, nx))
+        hess[..., 0, :, :] = back(-KX**2)
+        hess[..., 1, :, :] = back(-KXo * KYo)
+        hess[..., 2, :, :] = back(-1j * KXo * K)
+        hess[..., 3, :, :] = back(-KY**2)
+        hess[..., 4, :, :] = back(-1j * KYo * K)
+    return HalfSpaceField(pot, grad, hess)
+
+
+def square_field_gradient(gradient, hessian):
+    """In-plane gradient of ``|grad phi|^2`` from the potential's gradient and Hessian.
+
+    ``d/dx |grad phi|^2 = 2 (phi_x phi_xx + phi_y phi_xy + phi_z phi_xz)`` and likewise for y
+    (product rule, exact given the spectral derivatives).
+
+    Parameters
+    ----------
+    gradient : ndarray, shape (..., 3, ny, nx)
+        V/m.
+    hessian : ndarray, shape (..., 5, ny, nx)
+        V/m^2, components :data:`HESSIAN_COMPONENTS`.
+
+    Returns
+    -------
+    ndarray, shape (..., 2, ny, nx)
+        V^2/m^3.
+    """
+    gx, gy, gz = gradient[..., 0, :, :], gradient[..., 1, :, :], gradient[..., 2, :, :]
+    hxx, hxy, hxz, hyy, hyz = (hessian[..., c, :, :] for c in range(5))
+    out = np.empty(gradient.shape[:-3] + (2,) + gradient.shape[-2:])
+    out[..., 0, :, :] = 2.0 * (gx * hxx + gy * hxy + gz * hxz)
+    out[..., 1, :, :] = 2.0 * (gx * hxy + gy * hyy + gz * hyz)
+    return out
+
+
+# ------------------------------------------------------------------------------------------------
+# Unit responses with memory and disk caches
+# ------------------------------------------------------------------------------------------------
+_MEMO_FLOOR = collections.OrderedDict()
+_MEMO_MAPS = collections.OrderedDict()
+_MEMO_FLOOR_MAX = 8
+_MEMO_MAPS_MAX = 6
+
+
+def clear_memory_cache():
+    """Forget the unit responses kept in memory by this process (the disk cache is untouched)."""
+    _MEMO_FLOOR.clear()
+    _MEMO_MAPS.clear()
+
+
+def _memo_put(memo, key, value, limit):
+    memo[key] = value
+    memo.move_to_end(key)
+    while len(memo) > limit:
+        memo.popitem(last=False)
+
+
+def _resolve_cache_dir(cache_dir):
+    """``cache_dir`` argument, else $FIELDPLAN_CACHE, else None (no disk cache); False disables."""
+    if cache_dir is False:
+        return None
+    if cache_dir is None:
+        env = os.environ.get("FIELDPLAN_CACHE")
+        return Path(env) if env else None
+    return Path(cache_dir)
+
+
+def _atomic_save(path, array):
+    """Write ``array`` to ``path`` (.npy) so that readers never see a partial file."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".npy")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            np.save(fh, array, allow_pickle=False)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def _try_load(path, shape):
+    if path is None or not path.exists():
+        return None
+    try:
+        arr = np.load(path, allow_pickle=False)
+    except (OSError, ValueError) as exc:
+        warnings.warn(f"ignoring unreadable cache file {path} ({exc}); recomputing.", CacheWarning, stacklevel=3)
+        return None
+    if arr.shape != shape or arr.dtype != np.float64 or not np.all(np.isfinite(arr)):
+        warnings.warn(f"ignoring cache file {path} with unexpected content; recomputing.", CacheWarning, stacklevel=3)
+        return None
+    return arr
+
+
+def _try_save(path, array):
+    if path is None:
+        return
+    try:
+        _atomic_save(path, array)
+    except OSError as exc:
+        warnings.warn(f"could not write cache file {path} ({exc}); continuing without it.", CacheWarning,
+                      stacklevel=3)
+
+
+class UnitResponses:
+    """Per-electrode unit responses of a layout: floor potentials and height maps.
+
+    Electrode ``k`` at 1 V with all others at 0 V gives a floor potential (``floor[k]``) and, at
+    each height ``z``, the gradient and Hessian of the potential on the grid window
+    (:meth:`maps`). Any voltage vector's field is the superposition ``sum_k V_k * response_k``.
+
+    Results are kept in memory (per process, a few entries) and, when a cache directory is set,
+    on disk as ``.npy`` files named by a SHA-256 hash of the layout, the grid, the padding and the
+    height (written atomically: temporary file, then ``os.replace``).
+
+    Parameters
+    ----------
+    layout : ElectrodeLayout
+    grid : Grid
+    pad : int
+        Zero-padding factor of the FFT (ignored on a periodic grid).
+    cache_dir : str, Path, None or False
+        Directory of the disk cache. None: the ``FIELDPLAN_CACHE`` environment variable if set,
+        else no disk cache. False: no disk cache.
+    """
+
+    def __init__(self, layout, grid, pad=1, cache_dir=None):
+        self.layout = layout
+        self.grid = grid
+        self.pad = 0 if grid.periodic else int(pad)
+        self.cache_dir = cache_dir
+        self._solver = None
+        self._floor = None
+        self._spectrum = None
+
+    def __getstate__(self):
+        return {"layout": self.layout, "grid": self.grid, "pad": self.pad, "cache_dir": self.cache_dir}
+
+    def __setstate__(self, state):
+        self.__init__(state["layout"], state["grid"], state["pad"], state["cache_dir"])
+
+    def key(self, z=None):
+        """Hex SHA-256 of everything the cached arrays depend on (and the height, if given)."""
+        text = json.dumps([_SCHEMA, self.layout.key(), self.grid.key(), self.pad,
+                           None if z is None else repr(float(z))])
+        return hashlib.sha256(text.encode()).hexdigest()
+
+    def _path(self, kind, z=None):
+        d = _resolve_cache_dir(self.cache_dir)
+        return None if d is None else d / f"dep-{kind}-{self.key(z)[:32]}.npy"
+
+    @property
+    def solver(self):
+        """The :class:`FloorSolver` (built on first use)."""
+        if self._solver is None:
+            self._solver = FloorSolver(self.layout, self.grid)
+        return self._solver
+
+    @property
+    def floor(self):
+        """Unit floor potentials, shape (K, ny, nx), V per V."""
+        if self._floor is None:
+            key = self.key()
+            if key in _MEMO_FLOOR:
+                self._floor = _MEMO_FLOOR[key]
+            else:
+                shape = (len(self.layout),) + self.grid.shape
+                path = self._path("floor")
+                arr = _try_load(path, shape)
+                if arr is None:
+                    arr = self.solver.unit_responses()
+                    _try_save(path, arr)
+                arr.setflags(write=False)
+                _memo_put(_MEMO_FLOOR, key, arr, _MEMO_FLOOR_MAX)
+                self._floor = arr
+        return self._floor
+
+    def maps(self, z):
+        """Unit gradient and Hessian maps at height ``z``.
+
+        Parameters
+        ----------
+        z : float
+            Height above the floor, m.
+
+        Returns
+        -------
+        ndarray, shape (K, 8, ny, nx)
+            Per electrode (1 V): the potential gradient (components 0-2, V/m per V) and Hessian
+            (components 3-7, :data:`HESSIAN_COMPONENTS`, V/m^2 per V).
+        """
+        z = float(z)
+        key = self.key(z)
+        if key in _MEMO_MAPS:
+            _MEMO_MAPS.move_to_end(key)
+            return _MEMO_MAPS[key]
+        shape = (len(self.layout), 8) + self.grid.shape
+        path = self._path("maps", z)
+        arr = _try_load(path, shape)
+        if arr is None:
+            floor = self.floor
+            if self._spectrum is None:
+                Ny, Nx = _padded_shape(self.grid.shape, self.pad)
+                self._spectrum = scipy.fft.rfft2(floor, s=(Ny, Nx), workers=-1)
+            out = half_space_fields(floor, self.grid.spacing, z, pad=self.pad, workers=-1, _spectrum=self._spectrum)
+            arr = np.concatenate([out.gradient, out.hessian], axis=1)
+            _try_save(path, arr)
+        arr.setflags(write=False)
+        _memo_put(_MEMO_MAPS, key, arr, _MEMO_MAPS_MAX)
+        return arr
+
+    def pattern(self, voltages, z):
+        """Gradient and Hessian of the potential of a voltage pattern at height ``z``.
+
+        Parameters
+        ----------
+        voltages : array_like, shape (K,) or (P, K)
+            V.
+        z : float
+            m.
+
+        Returns
+        -------
+        gradient : ndarray, shape (..., 3, ny, nx), V/m
+        hessian : ndarray, shape (..., 5, ny, nx), V/m^2
+        """
+        v = np.asarray(voltages, dtype=float)
+        m = self.maps(z)
+        k = len(self.layout)
+        if v.shape[-1] != k:
+            raise ActuatorError(f"voltages must have {k} entries (one per electrode), got shape {v.shape}.")
+        flat = m.reshape(k, -1)
+        out = (v.reshape(-1, k) @ flat).reshape(v.shape[:-1] + m.shape[1:])
+        return out[..., :3, :, :], out[..., 3:, :, :]
+
+
+# ------------------------------------------------------------------------------------------------
+# Interpolation
+# ------------------------------------------------------------------------------------------------
+def _bspline_weights(t):
+    """Cubic B-spline weights of the four nodes around fractional position ``t`` in [0, 1)."""
+    t2, t3 = t * t, t * t * t
+    w0 = (1 - t) ** 3 / 6.0
+    w1 = (3 * t3 - 6 * t2 + 4) / 6.0
+    w2 = (-3 * t3 + 3 * t2 + 3 * t + 1) / 6.0
+    w3 = t3 / 6.0
+    return np.stack([w0, w1, w2, w3], axis=-1)
+
+
+class SplineMaps:
+    """Cubic B-spline interpolant of a stack of maps on a :class:`Grid`, evaluated at many points.
+
+    Equivalent to ``scipy.ndimage.map_coordinates(order=3)`` with mode ``mirror`` (or
+    ``grid-wrap`` on a periodic grid), but the spline coefficients are computed once and the
+    evaluation is vectorised over all maps and points in one gather.
+
+    Parameters
+    ----------
+    maps : ndarray, shape (M, ny, nx)
+    grid : Grid
+    """
+
+    def __init__(self, maps, grid):
+        maps = np.asarray(maps, dtype=float)
+        if maps.ndim != 3 or maps.shape[1:] != grid.shape:
+            raise ActuatorError(f"maps must have shape (M, {grid.ny}, {grid.nx}), got {maps.shape}.")
+        self.grid = grid
+        mode = "grid-wrap" if grid.periodic else "mirror"
+        coef = np.stack([ndimage.spline_filter(m, order=3, mode=mode) for m in maps])
+        self.coef = np.pad(coef, ((0, 0), (2, 2), (2, 2)), mode="wrap" if grid.periodic else "reflect")
+
+    @property
+    def size(self):
+        return self.coef.shape[0]
+
+    @classmethod
+    def from_coefficients(cls, coef, grid):
+        """Wrap already computed, padded coefficients (shape (M, ny + 4, nx + 4)); no copy."""
+        out = object.__new__(cls)
+        out.grid = grid
+        out.coef = coef
+        return out
+
+    @staticmethod
+    def stack(splines):
+        """One :class:`SplineMaps` holding the maps of several (same grid), in order."""
+        return SplineMaps.from_coefficients(np.concatenate([s.coef for s in splines], axis=0), splines[0].grid)
+
+    def _locate(self, xy):
+        g = self.grid
+        u = (xy[:, 0] - g.xmin) / g.dx
+        v = (xy[:, 1] - g.ymin) / g.dy
+        if g.periodic:
+            u, v = np.mod(u, g.nx), np.mod(v, g.ny)
+        iu = np.clip(np.floor(u), 0, g.nx - 1).astype(np.intp)
+        iv = np.clip(np.floor(v), 0, g.ny - 1).astype(np.intp)
+        wx = _bspline_weights(u - iu)
+        wy = _bspline_weights(v - iv)
+        # Padded coefficient index of node i is i + 2; the support is nodes i-1 .. i+2.
+        off = np.arange(4) + 1
+        return iv[:, None] + off, iu[:, None] + off, wy, wx
+
+    def __call__(self, xy, rows=None):
+        """Interpolated values, shape (M, n) (or (len(rows), n)), at points ``xy`` (n, 2) m."""
+        iy, ix, wy, wx = self._locate(np.asarray(xy, dtype=float))
+        c = self.coef if rows is None else self.coef[rows]
+        vals = c[:, iy[:, :, None], ix[:, None, :]]           # (M, n, 4, 4)
+        return np.einsum("mnab,na,nb->mn", vals, wy, wx)
