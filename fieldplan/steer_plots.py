@@ -1,0 +1,159 @@
+"""Figures of the steerability analysis: worst-direction speed maps and the body-count curve."""
+
+from __future__ import annotations
+
+import numpy as np
+from matplotlib.colors import ListedColormap
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
+
+from .errors import ActuatorError
+from .steer import CountCurve, DesignComparison, SpeedMap
+
+__all__ = ["plot_speed_map", "plot_count_curve", "plot_comparison"]
+
+_SPEED_UNITS = ((1e-3, "mm/s"), (1e-6, "µm/s"), (1e-9, "nm/s"))
+_LENGTH_UNITS = ((1e-3, "mm"), (1e-6, "µm"))
+
+
+def _speed_unit(vmax):
+    """Scale and label that put ``vmax`` (m/s) between about 1 and 1000."""
+    for f, name in _SPEED_UNITS:
+        if vmax >= f:
+            return f, name
+    return 1e-9, "nm/s"
+
+
+def _length_unit(span):
+    for f, name in _LENGTH_UNITS:
+        if span >= 2 * f:
+            return f, name
+    return 1e-6, "µm"
+
+
+def plot_speed_map(speed_map, *, workspace=None, title=None, directions=True, ax=None):
+    """Colour map of the single-body worst-direction speed; dead cells shown in grey.
+
+    Parameters
+    ----------
+    speed_map : SpeedMap
+    workspace : Workspace, optional
+        Its walls and obstacles are outlined.
+    title : str, optional
+    directions : bool
+        Mark the blocked direction in dead cells with short line segments.
+    ax : matplotlib Axes, optional
+        Draw into this axes (its figure is returned).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    if not isinstance(speed_map, SpeedMap):
+        raise ActuatorError(f"plot_speed_map: expected a SpeedMap, got {type(speed_map).__name__}.")
+    if ax is None:
+        fig = Figure(figsize=(6.0, 5.0), layout="constrained")
+        ax = fig.add_subplot()
+    else:
+        fig = ax.figure
+    xs, ys = speed_map.xs, speed_map.ys
+    span = max(np.ptp(xs) if xs.size > 1 else 0, np.ptp(ys) if ys.size > 1 else 0, 1e-9)
+    lf, lname = _length_unit(span)
+    vmax = float(np.nanmax(speed_map.speed)) if np.any(np.isfinite(speed_map.speed)) else 0.0
+    sf, sname = _speed_unit(vmax if vmax > 0 else 1e-6)
+    dx = xs[1] - xs[0] if xs.size > 1 else 1.0
+    dy = ys[1] - ys[0] if ys.size > 1 else 1.0
+    ext = [(xs[0] - dx / 2) / lf, (xs[-1] + dx / 2) / lf, (ys[0] - dy / 2) / lf, (ys[-1] + dy / 2) / lf]
+    img = ax.imshow(np.ma.masked_invalid(speed_map.speed / sf), origin="lower", extent=ext, cmap="viridis",
+                    vmin=0.0, vmax=max(vmax / sf, 1e-12), interpolation="nearest", aspect="equal")
+    fig.colorbar(img, ax=ax, label=f"worst-direction speed ({sname})")
+    dead = np.ma.masked_where(~speed_map.dead, np.ones_like(speed_map.speed))
+    ax.imshow(dead, origin="lower", extent=ext, cmap=ListedColormap(["0.6"]), vmin=0, vmax=1,
+              interpolation="nearest", aspect="equal")
+    handles = [Patch(color="0.6", label=f"dead: some direction unavailable ({100 * speed_map.dead_fraction:.1f} %)")]
+    if directions and speed_map.dead.any():
+        iy, ix = np.nonzero(speed_map.dead)
+        d = speed_map.direction[iy, ix]
+        L = 0.4 * min(abs(dx), abs(dy)) / lf
+        X, Y = xs[ix] / lf, ys[iy] / lf
+        segs_x = np.stack([X - L * d[:, 0], X + L * d[:, 0], np.full_like(X, np.nan)], axis=1).ravel()
+        segs_y = np.stack([Y - L * d[:, 1], Y + L * d[:, 1], np.full_like(Y, np.nan)], axis=1).ravel()
+        ax.plot(segs_x, segs_y, color="crimson", lw=0.8)
+        handles.append(Line2D([], [], color="crimson", lw=0.8, label="blocked direction"))
+    if workspace is not None:
+        _outline(ax, workspace, lf)
+    ax.set_xlabel(f"x ({lname})")
+    ax.set_ylabel(f"y ({lname})")
+    ax.set_title(title or "single-body worst-direction speed")
+    ax.legend(handles=handles, loc="upper right", fontsize="small", framealpha=0.8)
+    return fig
+
+
+def _outline(ax, workspace, lf):
+    geoms = [workspace.boundary] + list(workspace.obstacles)
+    for g in geoms:
+        polys = getattr(g, "geoms", [g])
+        for p in polys:
+            x, y = p.exterior.xy
+            ax.plot(np.asarray(x) / lf, np.asarray(y) / lf, color="k", lw=1.0)
+
+
+def plot_count_curve(curves, *, title=None, ax=None):
+    """Fraction of random configurations steerable against the number of bodies N.
+
+    Parameters
+    ----------
+    curves : CountCurve or dict of str -> CountCurve
+    title : str, optional
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Points with 95 % Wilson intervals; a dashed line per curve at the counting limit K/2.
+    """
+    if isinstance(curves, CountCurve):
+        curves = {"": curves}
+    if not isinstance(curves, dict) or not curves or not all(isinstance(c, CountCurve) for c in curves.values()):
+        raise ActuatorError("plot_count_curve: expected a CountCurve or a dict of name -> CountCurve.")
+    if ax is None:
+        fig = Figure(figsize=(6.0, 4.0), layout="constrained")
+        ax = fig.add_subplot()
+    else:
+        fig = ax.figure
+    for i, (name, c) in enumerate(curves.items()):
+        color = f"C{i}"
+        label = f"{name + ': ' if name else ''}K = {c.size} ({c.mode}), {c.trials} trials per N"
+        yerr = np.vstack([c.fraction - c.low, c.high - c.fraction])
+        ax.errorbar(c.counts, c.fraction, yerr=yerr, marker="o", capsize=3, color=color, label=label)
+        ax.axvline(c.counting_limit, color=color, ls="--", lw=0.8)
+    ax.plot([], [], color="0.3", ls="--", lw=0.8, label="counting limit K/2")
+    ax.set_xlabel("number of bodies N")
+    ax.set_ylabel("fraction of configurations steerable (1)")
+    ax.set_ylim(-0.03, 1.03)
+    ax.set_title(title or "how many bodies can be steered at once")
+    ax.legend(fontsize="small")
+    return fig
+
+
+def plot_comparison(comparison):
+    """Count curves of all designs side by side with their single-body speed maps.
+
+    Parameters
+    ----------
+    comparison : DesignComparison
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    if not isinstance(comparison, DesignComparison):
+        raise ActuatorError(f"plot_comparison: expected a DesignComparison, got {type(comparison).__name__}.")
+    n = len(comparison.maps)
+    fig = Figure(figsize=(4.5 * (n + 1), 4.0), layout="constrained")
+    axes = fig.subplots(1, n + 1, squeeze=False)[0]
+    plot_count_curve(comparison.curves, ax=axes[0])
+    for ax, (name, m) in zip(axes[1:], comparison.maps.items()):
+        plot_speed_map(m, title=name, ax=ax, directions=False)
+    return fig
