@@ -515,8 +515,8 @@ def _setting_name(channels, v):
 def _primitive_values(prim, values, channels, lines, path):
     out = {}
     if not channels:
-        return {str(p): () for p in dict.fromkeys(prim)}
-    for p in dict.fromkeys(prim):
+        return {str(p): () for p in dict.fromkeys(str(q) for q in prim)}
+    for p in dict.fromkeys(str(q) for q in prim):
         idx = np.flatnonzero(prim == p)
         v = values[idx]
         ref = v[0]
