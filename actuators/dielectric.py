@@ -806,7 +806,7 @@ def plot_field_magnitude(array, voltages, height, ax=None):
     return fig
 
 
-def plot_velocity_fields(array, bodies, medium, u, n=60, arrows=20, height_of=None):
+def plot_velocity_fields(array, bodies, medium, u, n=100, arrows=20, axes=None, log=True):
     """One panel per body: DEP speed (colour) and direction (arrows) under one input.
 
     Parameters
@@ -821,6 +821,10 @@ def plot_velocity_fields(array, bodies, medium, u, n=60, arrows=20, height_of=No
         Points per side of the speed map.
     arrows : int
         Arrows per side.
+    axes : sequence of matplotlib Axes, optional
+        One per body (to compose with other plots); default a new figure.
+    log : bool
+        Logarithmic speed colour scale (speeds span decades between gaps and pad centres).
 
     Returns
     -------
@@ -837,21 +841,37 @@ def plot_velocity_fields(array, bodies, medium, u, n=60, arrows=20, height_of=No
         u = np.asarray(u.values)
     u = np.asarray(u, dtype=float)
     x0, x1, y0, y1 = array.extent
-    fig, axes = plt.subplots(1, len(bodies), figsize=(5.2 * len(bodies), 4.4), squeeze=False)
-    for ax, body in zip(axes[0], bodies):
+    from matplotlib.colors import LogNorm
+
+    if axes is None:
+        fig, axes = plt.subplots(1, len(bodies), figsize=(5.2 * len(bodies), 4.4), squeeze=False)
+        axes = axes[0]
+        own = True
+    else:
+        axes = list(axes)
+        if len(axes) != len(bodies):
+            raise ActuatorError(f"plot_velocity_fields: {len(bodies)} bodies but {len(axes)} axes.")
+        fig = axes[0].figure
+        own = False
+    for ax, body in zip(axes, bodies):
         xs, ys = np.linspace(x0, x1, n), np.linspace(y0, y1, n)
         X, Y = np.meshgrid(xs, ys)
         v = array.velocity(body, medium, np.column_stack([X.ravel(), Y.ravel()]), u).reshape(n, n, 2)
         speed = np.hypot(v[..., 0], v[..., 1]) * 1e6
-        im = ax.pcolormesh(xs * 1e6, ys * 1e6, speed, shading="auto", cmap="magma")
+        top = max(float(speed.max()), 1e-30)
+        norm = LogNorm(vmin=top * 1e-3, vmax=top) if log else None
+        im = ax.pcolormesh(xs * 1e6, ys * 1e6, np.maximum(speed, top * 1e-3) if log else speed,
+                           shading="auto", cmap="magma", norm=norm)
         _outline(ax, array.layout)
         xa, ya = np.linspace(x0, x1, arrows + 2)[1:-1], np.linspace(y0, y1, arrows + 2)[1:-1]
         XA, YA = np.meshgrid(xa, ya)
         va = array.velocity(body, medium, np.column_stack([XA.ravel(), YA.ravel()]), u)
         norm = np.hypot(va[:, 0], va[:, 1])
+        # Directions where the body hardly moves (below the colour floor) would only be clutter.
+        show = norm > 1e-3 * top * 1e-6
         norm[norm == 0] = 1.0
-        ax.quiver(XA.ravel() * 1e6, YA.ravel() * 1e6, va[:, 0] / norm, va[:, 1] / norm, color="cyan",
-                  scale=arrows * 1.6, width=0.004, label="direction")
+        ax.quiver(XA.ravel()[show] * 1e6, YA.ravel()[show] * 1e6, va[show, 0] / norm[show], va[show, 1] / norm[show],
+                  color="cyan", scale=arrows * 1.6, width=0.004, label="direction")
         re_k = float(np.real(clausius_mossotti(u[-1], body, medium)))
         ax.set_title(f"{body.name}: Re K = {re_k:+.2f} at {_freq_label(u[-1])}, z = {body.height * 1e6:.3g} um")
         ax.set_aspect("equal")
@@ -859,7 +879,8 @@ def plot_velocity_fields(array, bodies, medium, u, n=60, arrows=20, height_of=No
         ax.set_ylabel("y (um)")
         ax.legend(loc="upper right", fontsize=7)
         fig.colorbar(im, ax=ax, label="speed (um/s)")
-    fig.tight_layout()
+    if own:
+        fig.tight_layout()
     return fig
 
 

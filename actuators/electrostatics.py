@@ -407,7 +407,9 @@ def layout_from_spec(spec):
             try:
                 shapes[n] = Polygon(np.asarray(pts, dtype=float))
             except (ValueError, TypeError) as exc:
-                raise ActuatorError(f"layout spec electrode {n!r}: vertices must be [[x, y], ...] in m ({exc}).") from None
+                raise ActuatorError(
+                    f"layout spec electrode {n!r}: vertices must be [[x, y], ...] in m ({exc})."
+                ) from None
         return ElectrodeLayout(shapes)
     if kind not in _SPEC_BUILDERS:
         raise ActuatorError(f"unknown layout kind {kind!r}; known: {sorted(_SPEC_BUILDERS) + ['electrodes']}.")
@@ -559,6 +561,7 @@ class FloorSolver:
         self.layout = layout
         self.grid = grid
         self.labels = self._rasterise()
+        self.matrix = self.coupling = None
         self._lu = None
         self._b = None
 
@@ -610,7 +613,8 @@ class FloorSolver:
                 )
         return labels
 
-    def _factorise(self):
+    def assemble(self):
+        """Build the gap Laplacian :attr:`matrix` (free x free nodes) and :attr:`coupling` (free nodes x K)."""
         g = self.grid
         ny, nx = g.shape
         lab = self.labels.ravel()
@@ -651,8 +655,13 @@ class FloorSolver:
         B = sp.csr_matrix((np.concatenate(bval), (np.concatenate(brow), np.concatenate(bcol))),
                           shape=(nfree, len(self.layout)))
         self._free = free
-        self._b = B
-        self._lu = spla.splu(A) if nfree else None
+        self.matrix, self.coupling = A, B
+
+    def _factorise(self):
+        if self.matrix is None:
+            self.assemble()
+        self._b = self.coupling
+        self._lu = spla.splu(self.matrix) if self.matrix.shape[0] else None
 
     def solve(self, voltages):
         """Floor potential for electrode voltages.

@@ -146,7 +146,8 @@ def test_actuator_force_equals_dep_law_on_its_own_field(small_array):
     e2 = maps["e_rms"] ** 2
 
     def d4(a, axis, h):          # fourth-order central difference
-        return (-np.roll(a, -2, axis) + 8 * np.roll(a, -1, axis) - 8 * np.roll(a, 1, axis) + np.roll(a, 2, axis)) / (12 * h)
+        r = np.roll
+        return (-r(a, -2, axis) + 8 * r(a, -1, axis) - 8 * r(a, 1, axis) + r(a, 2, axis)) / (12 * h)
 
     gx, gy = d4(e2, 1, arr.grid.dx), d4(e2, 0, arr.grid.dy)
     j = np.arange(20, arr.grid.ny - 20, 11)
@@ -468,17 +469,25 @@ def test_operating_warnings():
         cm.__exit__(None, None, None)
     cats = [c for c, _ in arr.operating_warnings(BUFFER, quiet, 1e3, 5e-6)]
     assert cats == [ElectrolysisWarning]
-    with pytest.warns(ElectrolysisWarning, match="common practice"):
-        arr.velocity(pdep, BUFFER, [[0.0, 0.0]], quiet + [1e3])
+
+    def caught(fn):
+        with warnings.catch_warnings(record=True) as rec:
+            warnings.simplefilter("always")
+            fn()
+        return {w.category: str(w.message) for w in rec}
+
+    got = caught(lambda: arr.velocity(pdep, BUFFER, [[0.0, 0.0]], quiet + [1e3]))
+    assert set(got) == {ElectrolysisWarning} and "common practice" in got[ElectrolysisWarning]
     salty = Medium("salty", relative_permittivity=78.0, conductivity=0.1)
-    with pytest.warns(JouleHeatingWarning, match="order of magnitude"):
-        arr.velocity(pdep, salty, [[0.0, 0.0]], [20.0, -20.0, 1e6])
-    strict = ElectrodeArray(lay, [1e6], voltage_limit=20.0, grid_points=64, field_limit=1e4)
-    with pytest.warns(FieldLimitWarning, match="declared limit"):
-        strict.velocity(pdep, low, [[0.0, 0.0]], [2.0, -2.0, 1e6])
-    # warnings also come from basis(), once per primitive set and height
-    with pytest.warns(ElectrolysisWarning, match="primitive"):
-        arr.basis([pdep], BUFFER, [[0.0, 0.0]])
+    got = caught(lambda: arr.velocity(pdep, salty, [[0.0, 0.0]], [20.0, -20.0, 1e6]))
+    assert JouleHeatingWarning in got and "order of magnitude" in got[JouleHeatingWarning]
+    strict = ElectrodeArray(lay, [1e6], voltage_limit=20.0, grid_points=96, field_limit=1e4)
+    got = caught(lambda: strict.velocity(pdep, low, [[0.0, 0.0]], [2.0, -2.0, 1e6]))
+    assert set(got) == {FieldLimitWarning} and "declared limit" in got[FieldLimitWarning]
+    # warnings also come from basis(), once per primitive set, medium and height
+    got = caught(lambda: arr.basis([pdep], BUFFER, [[0.0, 0.0]]))
+    assert ElectrolysisWarning in got and "primitive" in got[ElectrolysisWarning]
+    assert caught(lambda: arr.basis([pdep], BUFFER, [[1e-6, 0.0]])) == {}
     # dT ~ sigma V_rms^2 / k: order-of-magnitude rule [memory] - check only the arithmetic of the stated form
     assert joule_heating_estimate(10.0, 0.06, 0.6) == pytest.approx(10.0)
 
