@@ -146,7 +146,8 @@ def _loop_terms(rho, z, a, gradient=False):
     beta2 = ap * ap + z2
     alpha2 = am * am + z2
     beta = np.sqrt(beta2)
-    m = 4.0 * a * rho / beta2
+    # Rounding can push m a hair above 1 next to the wire, where ellipe is undefined.
+    m = np.minimum(4.0 * a * rho / beta2, 1.0)
     p = alpha2 / beta2
     J, dJ, small, K_big, E_big = _j_function(m, p, gradient)
     inv_b5 = 1.0 / (beta2 * beta2 * beta)
