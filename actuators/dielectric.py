@@ -344,7 +344,7 @@ class ElectrodeArray(Actuator):
     ----------
     layout : ElectrodeLayout, dict of name to polygon, or a spec dict (:func:`layout_from_spec`)
     frequencies : sequence of float or str
-        Allowed drive frequencies, Hz (> 0, distinct).
+        Allowed drive frequencies (> 0, distinct), Hz.
     voltage_limit : float or str
         Largest peak amplitude on any electrode, V.
     patterns : dict of str to sequence, array_like (P, K), or None
@@ -354,7 +354,8 @@ class ElectrodeArray(Actuator):
     grid : Grid, optional
         Field grid; default ``Grid.around(layout, grid_points, margin)``.
     grid_points : int
-        Nodes along the longer side of the default grid.
+        Nodes along the longer side of the default grid (the grid spacing should stay below half
+        the lowest body height; a ResolutionWarning says when it does not).
     margin : float or str, optional
         Bare floor around the electrodes to the 0 V edge of the default grid, m.
     pad : int
@@ -362,18 +363,18 @@ class ElectrodeArray(Actuator):
     cache_dir : str, Path, None or False
         Disk cache of unit responses; None uses ``$FIELDPLAN_CACHE`` if set.
     field_limit : float or None
-        V/m: warn when ``max |E_rms|`` at a body's height exceeds it. Default 1e6 V/m (common
+        Largest ``|E_rms|`` at a body's height before a warning, V/m. Default 1e6 V/m (common
         practice, no source: around there electro-thermal flow and stress on cell membranes grow;
-        set it for your particles).
+        set it for your particles). None: no check.
     heating_limit : float or None
-        K: warn when :func:`joule_heating_estimate` exceeds it (default 1 K, common practice, no
-        source, for live cells).
+        Largest estimated temperature rise of the medium, K, allowed before a warning. Default 1 K (common
+        practice, no source, for live cells); the estimate is :func:`joule_heating_estimate`.
     thermal_conductivity : float
-        W/(m K) of the medium, for the heating estimate (default water).
+        Thermal conductivity of the medium for the heating estimate, W/m/K (default water).
     electrolysis_frequency : float or None
-        Hz: warn when a nonzero pattern is driven below this frequency in a medium with
-        conductivity > 0 (default 10 kHz: common practice, no source - electrode reactions and
-        bubbles appear at low frequency in salt solutions, more so at higher voltage).
+        Frequency below which a nonzero pattern in a medium with conductivity > 0 warns, Hz.
+        Default 10 kHz (common practice, no source: electrode reactions and bubbles appear at low
+        frequency in salt solutions, more so at higher voltage).
     neighbour_factor : float
         Electrode pairs closer than this times the nearest gap of each count as neighbours for
         the default antiphase patterns.
@@ -522,13 +523,14 @@ class ElectrodeArray(Actuator):
                 "inside the floor); set Body.height >= radius."
             )
         clausius_mossotti(self.frequencies[0], body, medium)    # raises if not dielectric
-        if h < 2 * max(self.grid.dx, self.grid.dy):
+        spacing = max(self.grid.dx, self.grid.dy)
+        if h < 2 * spacing:
             key_w = ("resolution", h)
             if key_w not in self._warned:
                 self._warned.add(key_w)
                 warnings.warn(
                     f"body {name!r} sits at {h * 1e6:.3g} um, less than two grid spacings "
-                    f"(2 x {self.grid.dx * 1e6:.3g} um) above the floor: the field gradient there is under-resolved; "
+                    f"(2 x {spacing * 1e6:.3g} um) above the floor: the field gradient there is under-resolved; "
                     "use more grid_points.", ResolutionWarning, stacklevel=3)
         self._checked.add(key)
 

@@ -409,6 +409,29 @@ def test_quadrupole_traps_ndep_and_repels_pdep():
     np.testing.assert_allclose(v_cell, ratio * v_bead, rtol=1e-10, atol=1e-20)
 
 
+def test_periodic_finger_array_velocity_is_periodic():
+    """An infinite finger array (one period as a periodic grid): velocity repeats with the period.
+
+    The force is also mirror-symmetric about a finger's centre line under the symmetric +,- drive,
+    so v_x is odd there ([pub] symmetry of Laplace's equation with symmetric boundary data).
+    """
+    w, gap = 20e-6, 20e-6
+    period = 2 * (w + gap)
+    lay = ElectrodeLayout({"f_plus": box(-w / 2, -50e-6, w / 2, 50e-6),
+                           "f_minus": box(w / 2 + gap, -50e-6, 1.5 * w + gap, 50e-6)})
+    grid = Grid.cell((-period / 2, period / 2, -50e-6, 50e-6), 64, 80)
+    arr = ElectrodeArray(lay, [1e6], voltage_limit=2.0, grid=grid, patterns={"pm": [2.0, -2.0]})
+    u = arr.primitives()[0].values
+    xs = np.linspace(-period / 2, period / 2, 9)
+    xy = np.column_stack([xs, np.zeros_like(xs)])
+    v = arr.velocity(CELL, BUFFER, xy, u)
+    v_shift = arr.velocity(CELL, BUFFER, xy + [period, 0.0], u)
+    np.testing.assert_allclose(v_shift, v, atol=1e-9 * np.max(np.abs(v)))
+    mirror = arr.velocity(CELL, BUFFER, xy * [-1, 1], u)
+    np.testing.assert_allclose(mirror[:, 0], -v[:, 0], atol=1e-6 * np.max(np.abs(v)))
+    assert np.max(np.abs(v[:, 0])) > 1e-7
+
+
 def test_velocity_is_quadratic_in_voltage_and_sign_symmetric(small_array):
     """F ~ grad|E|^2 and E ~ V [pub force law]: v(a V) = a^2 v(V); antiphase flip of all electrodes changes nothing."""
     arr = small_array
