@@ -676,3 +676,23 @@ def test_plot_field(coils4):
     assert {"x (mm)", "y (mm)", "|B| (mT)", "bead speed (µm/s)"} <= labels
     import matplotlib.pyplot as plt
     plt.close(fig)
+
+
+def test_built_from_plain_data():
+    # Scenario files give coils and bias coils as mappings; "module:Class" loading (fieldplan.registry).
+    from fieldplan.registry import load_actuator
+
+    spec = dict(center=(0.01, 0.0, -0.006), axis=(0, 0, 1), radius=0.005, turns=200, length=0.008,
+                layers=4, current_limit=2.0)
+    bias = [{"coil": dict(spec, center=(0.0, 0.0, 0.02), radius=0.03, length=0.0, layers=1), "current": 0.5}]
+    arr = load_actuator("actuators.magnetic:CoilArray", coils=[spec, dict(spec, center=(-0.01, 0.0, -0.006))],
+                        plane_height=0.0, bead_models="linear", bias=bias)
+    ref = CoilArray([Coil(**spec), Coil(**dict(spec, center=(-0.01, 0.0, -0.006)))], 0.0, bead_models="linear",
+                    bias=[(Coil(**bias[0]["coil"]), 0.5)])
+    xy = [[0.002, 0.001]]
+    np.testing.assert_array_equal(arr.velocity(SOFT, MED, xy, [1.0, 0.0]), ref.velocity(SOFT, MED, xy, [1.0, 0.0]))
+    assert "zero_idle" not in arr.tags
+    with pytest.raises(ActuatorError, match="bias"):
+        CoilArray([spec], 0.0, bias=[{"coil": spec}])
+    with pytest.raises(ActuatorError, match="cannot build a Coil"):
+        CoilArray([dict(spec, colour="red")], 0.0)
