@@ -1016,7 +1016,14 @@ class CoilArray(Actuator):
         self.plane_height = float(plane_height)
         if not math.isfinite(self.plane_height):
             raise ActuatorError(f"CoilArray plane_height must be finite (m), got {plane_height!r}.")
-        self.bias = self._check_bias(bias)
+        self._bias = self._check_bias(bias)
+        # The parameter as given, normalised to plain values (for to_config and scenario files).
+        if self._bias["coils"]:
+            self.bias = tuple((c, float(i)) for c, i in zip(self._bias["coils"], self._bias["currents"]))
+        elif bias is not None:
+            self.bias = tuple(float(v) for v in self._bias["uniform"])
+        else:
+            self.bias = None
         if isinstance(bead_models, str):
             bead_models = (bead_models,)
         bead_models = tuple(bead_models)
@@ -1054,7 +1061,7 @@ class CoilArray(Actuator):
         self._channels = tuple(Channel(f"coil_{k + 1}", "A", -c.current_limit, c.current_limit)
                                for k, c in enumerate(self.coils))
         self._setup_loops()
-        self._primitive_spec = primitives
+        self._primitive_spec = primitives if isinstance(primitives, str) else None
         self._primitives = self._make_primitives(primitives)
         # Idle input first, then each primitive: the rows basis() evaluates.
         self._prim_matrix = np.vstack([self.idle_input()] + [np.asarray(p.values) for p in self._primitives])
@@ -1062,7 +1069,7 @@ class CoilArray(Actuator):
         tags = set()
         if set(self.bead_models) == {"fixed"}:
             tags.add("affine_in_input")
-        if not self.bias["coils"]:
+        if not self._bias["coils"]:
             tags.add("zero_idle")
         self.tags = frozenset(tags)
 
@@ -1109,7 +1116,7 @@ class CoilArray(Actuator):
         return out
 
     def _all_coils(self):
-        return self.coils + self.bias["coils"]
+        return self.coils + self._bias["coils"]
 
     def _setup_loops(self):
         x0, x1, y0, y1 = self.extent
@@ -1182,7 +1189,27 @@ class CoilArray(Actuator):
         return tuple(out)
 
     def _bias_is_zero(self):
-        return not self.bias["coils"] and not np.any(self.bias["uniform"])
+        return not self._bias["coils"] and not np.any(self._bias["uniform"])
+
+    def to_config(self):
+        """Constructor parameters as plain data (SI numbers): ``CoilArray(**cfg)`` rebuilds the array."""
+        import dataclasses
+
+        def coil(c):
+            return {k: (list(v) if isinstance(v, tuple) else v) for k, v in dataclasses.asdict(c).items()}
+
+        if self.bias is None:
+            bias = None
+        elif self._bias["coils"]:
+            bias = [{"coil": coil(c), "current": i} for c, i in self.bias]
+        else:
+            bias = list(self.bias)
+        prims = self._primitive_spec
+        if prims is None:
+            prims = [[p.name, list(p.values)] for p in self._primitives]
+        return {"coils": [coil(c) for c in self.coils], "plane_height": self.plane_height, "bias": bias,
+                "bead_models": list(self.bead_models), "primitives": prims, "extent": list(self.extent),
+                "method": self.method, "grid_rtol": self.grid_rtol, "coil_rtol": self.coil_rtol}
 
     def __getstate__(self):
         state = self.__dict__.copy()
@@ -1206,7 +1233,7 @@ class CoilArray(Actuator):
 
     def describe(self):
         return (f"CoilArray of {len(self.coils)} coils (bias: "
-                f"{'coils' if self.bias['coils'] else ('uniform' if np.any(self.bias['uniform']) else 'none')}), "
+                f"{'coils' if self._bias['coils'] else ('uniform' if np.any(self._bias['uniform']) else 'none')}), "
                 f"beads {list(self.bead_models)}, method {self.method}, tags {sorted(self.tags)}")
 
     # -- fields ---------------------------------------------------------------------------------
@@ -1271,9 +1298,9 @@ class CoilArray(Actuator):
         K = len(self.coils)
         B = np.tensordot(U, Bu[:K], axes=(-1, 0))
         G = np.tensordot(U, Gu[:K], axes=(-1, 0))
-        B = B + self.bias["uniform"]
-        if self.bias["coils"]:
-            I = self.bias["currents"]
+        B = B + self._bias["uniform"]
+        if self._bias["coils"]:
+            I = self._bias["currents"]
             B = B + np.tensordot(I, Bu[K:], axes=(0, 0))
             G = G + np.tensordot(I, Gu[K:], axes=(0, 0))
         return B, G

@@ -696,3 +696,21 @@ def test_built_from_plain_data():
         CoilArray([spec], 0.0, bias=[{"coil": spec}])
     with pytest.raises(ActuatorError, match="cannot build a Coil"):
         CoilArray([dict(spec, colour="red")], 0.0)
+
+
+def test_to_config_round_trip(coils4):
+    # Scenario files write actuators through to_config(); CoilArray(**cfg) must rebuild the same model.
+    import yaml
+
+    pair = helmholtz_pair(0.04, 100, current_limit=3.0)
+    for kw in (dict(bias=[(pair[0], 0.7), (pair[1], 0.7)], primitives="singles"),
+               dict(bias=(0.0, 0.0, 0.004), primitives=[("a", (1.0, 0, 0, 0)), ("b", (0, -2.0, 0, 0))]),
+               dict()):
+        arr = CoilArray(coils4, 0.0, bead_models=("linear", "saturating"), extent=EXT, **kw)
+        cfg = yaml.safe_load(yaml.safe_dump(arr.to_config()))
+        back = CoilArray(**cfg)
+        xy = [[0.003, -0.004], [0.0, 0.008]]
+        u = [1.0, -0.5, 0.0, 2.0]
+        np.testing.assert_array_equal(back.velocity(SAT, MED, xy, u), arr.velocity(SAT, MED, xy, u))
+        assert [p.name for p in back.primitives()] == [p.name for p in arr.primitives()]
+        assert back.tags == arr.tags
