@@ -157,6 +157,7 @@ class PrimitiveField:
     coverage_samples: float = COVERAGE_SAMPLES
     _rbf: object = field(default=None, repr=False)
     _hat: object = field(default=None, repr=False)
+    _tree: object = field(default=None, repr=False)
 
     def __post_init__(self):
         if self._rbf is None:
@@ -206,7 +207,9 @@ class PrimitiveField:
         ``h = bandwidth``.
         """
         xy = np.asarray(xy, dtype=float).reshape(-1, 2)
-        tree = cKDTree(self.xy)
+        if self._tree is None:
+            self._tree = cKDTree(self.xy)
+        tree = self._tree
         # Samples beyond 6 bandwidths add < exp(-18) each: leave them out of the sum.
         d = tree.sparse_distance_matrix(cKDTree(xy), 6.0 * self.bandwidth, output_type="coo_matrix")
         n_eff = np.bincount(d.col, weights=np.exp(-0.5 * (d.data / self.bandwidth) ** 2), minlength=len(xy))
@@ -591,6 +594,9 @@ class CalibratedActuator(Actuator):
     ``zero_idle``); any other input raises :class:`ActuatorError`.
 
     The medium argument is not used: the fields were measured in the medium of the experiment.
+    Outside the data the thin-plate spline continues linearly, which is a guess: :meth:`coverage`
+    (0 = no data near, 1 = well covered) and :meth:`uncertainty` say where the fields are backed by
+    data, so a planner can penalise or avoid the rest.
 
     Parameters
     ----------
@@ -1317,7 +1323,7 @@ def plot_coverage(fit, *, kind=None, extent=None, resolution=90):
 def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=None, name="actuator",
                       window=9, polyorder=2, stride=None, max_jump=None, sort=False, kernel="thin_plate_spline",
                       smoothing=None, folds=5, min_samples=20, max_samples=800, bandwidth=None, plots=True,
-                      note=None, rng=0):
+                      note=None, warn=True, rng=0):
     """Fit a calibrated actuator from a tracking CSV and write it with a report.
 
     Writes into ``out_dir`` (created if needed): ``<name>.npz`` + ``<name>.json`` (the actuator,
@@ -1345,6 +1351,9 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
     plots : bool
     note : str, optional
         Text stored in the actuator's JSON.
+    warn : bool
+        Re-emit the data and calibration warnings (they are always listed in the report's
+        ``warnings``; a command-line caller that prints those may pass False).
     rng : int
 
     Returns
@@ -1376,7 +1385,8 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
         act = CalibratedActuator(fit, idle_primitive=idle)
     for w in rec:
         caught.append(f"{w.category.__name__}: {w.message}")
-        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+        if warn:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     os.makedirs(out_dir, exist_ok=True)
     stem = os.path.join(out_dir, name)
     json_path, npz_path = act.save(stem, note=note)

@@ -782,8 +782,8 @@ def velocity_samples(data, *, window=9, polyorder=2, stride=None, warn=True):
 
     Notes
     -----
-    A segment shorter than ``window`` but with at least ``polyorder + 2`` frames gives one sample
-    from a shorter (odd) window; shorter segments are dropped and reported as ``short``.
+    A segment shorter than ``window`` gives one sample from the longest odd window that fits, if
+    that window has at least ``polyorder + 2`` frames; shorter segments are dropped and reported as ``short``.
     ``sigma`` is the velocity noise expected from the tracking noise alone, estimated from the
     residuals of the smoothing fit (pooled over all segments) and the filter's coefficients.
     """
@@ -798,18 +798,20 @@ def velocity_samples(data, *, window=9, polyorder=2, stride=None, warn=True):
     if stride < 1:
         raise TrackingDataError(f"stride must be >= 1 frame, got {stride}.")
     issues = list(data.issues)
+    # A shortened window must still smooth: odd, and at least two frames more than the degree.
+    min_frames = polyorder + 2 + (polyorder % 2 == 1)
     picks = []           # row indices of the sample centres, per segment
     resid2, dof = 0.0, 0.0
     xy_s, v_s, w_used = [], [], []
     for sl in data.segment_slices():
         L = sl.stop - sl.start
         w = window if L >= window else (L if L % 2 else L - 1)
-        if w < polyorder + 2 or w < 3:
+        if w < min_frames:
             i = sl.start
             issues.append(TrackIssue(
                 "short", str(data.track[i]), float(data.time[i]), int(data.line[i]) or None,
                 f"segment of {L} frame(s) under {str(data.primitive[i])!r} is too short for a derivative "
-                f"(needs >= {max(polyorder + 2, 3)}); dropped"))
+                f"(needs >= {min_frames}); dropped"))
             continue
         t = data.time[sl]
         dt = float(np.mean(np.diff(t)))

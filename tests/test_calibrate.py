@@ -374,3 +374,18 @@ def test_demo_data_is_labelled_and_calibrates(tmp_path):
     assert [f["primitive"] for f in report["fields"]] == ["pull_sw", "pull_ne"]
     assert all(f["cv_relative"] < 0.3 for f in report["fields"])
     assert isinstance(CalibratedActuator.load(report["actuator"]).fit, FieldFit)
+
+
+def test_shipped_fitted_actuator_matches_shipped_data():
+    """scenarios/calibration/fitted was fitted from the shipped tracks.csv (checksum) and loads."""
+    import hashlib
+
+    here = os.path.join(os.path.dirname(__file__), "..", "scenarios", "calibration")
+    meta = json.loads(open(os.path.join(here, "fitted", "actuator.json")).read())
+    digest = hashlib.sha256(open(os.path.join(here, "tracks.csv"), "rb").read()).hexdigest()
+    assert meta["source"]["sha256"] == digest, "re-run `fieldplan fit` after regenerating tracks.csv"
+    assert "INVENTED" in meta["note"]
+    act = load_calibrated(os.path.join(here, "fitted", "actuator"))
+    body = fieldplan.Body("bead-2um", radius=2e-6, density=1050.0)
+    check_actuator(act, [body], WATER)
+    assert act.idle_primitive == "idle" and len(act.primitives()) == 4
