@@ -539,6 +539,21 @@ def main(argv=None):
     if not args.command:
         parser.print_help()
         return EXIT_BAD_INPUT
+    import warnings  # noqa: PLC0415
+
+    with warnings.catch_warnings():
+        if getattr(args, "quiet", False):
+            warnings.simplefilter("ignore")
+        else:
+            warnings.showwarning = _show_warning
+        return _dispatch(args)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    print(f"warning: {category.__name__}: {message}", file=sys.stderr, flush=True)
+
+
+def _dispatch(args):
     try:
         return _COMMANDS[args.command](args)
     except ScenarioError as exc:

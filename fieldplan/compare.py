@@ -212,7 +212,7 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
                                  "with --schedule instead.") from None
         t0 = time.perf_counter()
         res = plan(sc.actuator, sc.bodies, sc.workspace, sc.starts, sc.goals, limits=sc.limits,
-                   settings=sc.plan_settings(), rng=seed0)
+                   settings=sc.plan_settings(), rng=seed0, **({"progress": True} if progress else {}))
         run.planning_time = time.perf_counter() - t0
         _take_plan(run, res)
         run.schedule = _quantised(res.schedule, sc.limits)
@@ -221,7 +221,7 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
     if run.schedule is not None:
         run.schedule.check(sc.limits)
     if sc.mode == "closed_loop" and schedule is None:
-        from .plan import closed_loop  # noqa: PLC0415
+        closed_loop = _closed_loop()
 
         t_plan = 0.0
         for k in _progress(range(n_trials or 1), n_trials or 1, progress, "trials"):
@@ -254,6 +254,17 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
                     tolerance=tol, rng=seed0 + k, brownian=sim.brownian, **sim.simulator_options())
         run.trials.append(TrialResult(seed0 + k, bool(r.success), r.message, r.times, r.positions, r.metrics))
     return run
+
+
+def _closed_loop():
+    for mod in ("live", "plan"):
+        try:
+            module = __import__(f"fieldplan.{mod}", fromlist=["closed_loop"])
+        except ImportError:
+            continue
+        if hasattr(module, "closed_loop"):
+            return module.closed_loop
+    raise FieldplanError("planner.mode closed_loop needs fieldplan.live.closed_loop, which is not available.")
 
 
 def _miss_message(sc, m):
@@ -450,25 +461,32 @@ class Comparison:
 
     def bar_chart(self):
         """Figure with one panel per metric, one bar (with a standard-deviation whisker) per variant."""
-        import matplotlib.pyplot as plt  # noqa: PLC0415
+        import matplotlib  # noqa: PLC0415
+        from matplotlib.figure import Figure  # noqa: PLC0415
+        from matplotlib.patches import Rectangle  # noqa: PLC0415
 
         keys = [m for m in METRICS if any(not _nan(r.get(m[0])) for r in self.rows)]
         n = len(keys)
         cols = min(3, max(n, 1))
         rows = int(math.ceil(n / cols)) or 1
-        fig, axes = plt.subplots(rows, cols, figsize=(4.2 * cols, 3.4 * rows), squeeze=False)
+        fig = Figure(figsize=(4.2 * cols, 3.4 * rows + 0.6))
+        axes = fig.subplots(rows, cols, squeeze=False)
         labels = [r["label"] for r in self.rows]
-        colours = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+        colours = matplotlib.rcParams["axes.prop_cycle"].by_key()["color"]
         for ax, (key, title, unit) in zip(axes.flat, keys):
             vals = np.array([np.nan if _nan(r.get(key)) else r[key] for r in self.rows], dtype=float)
             sds = np.array([0.0 if _nan(r.get(key + "_sd")) else r[key + "_sd"] for r in self.rows], dtype=float)
             if key == "success_rate":
                 scale, ulabel = 100.0, "%"
+                ax.set_ylim(0, 105)
+            elif key == "input_energy":
+                eu = {r.get("energy_unit") for r in self.rows}
+                scale, ulabel = 1.0, (eu.pop() if len(eu) == 1 else "unit^2 s, per variant")
             else:
                 scale, ulabel = _prefix(np.nanmax(np.abs(vals)) if np.any(np.isfinite(vals)) else 1.0, unit)
             x = np.arange(len(labels))
-            bars = ax.bar(x, np.nan_to_num(vals * scale), yerr=sds * scale, capsize=3,
-                          color=[colours[i % len(colours)] for i in range(len(labels))])
+            ax.bar(x, np.nan_to_num(vals * scale), yerr=sds * scale, capsize=3,
+                   color=[colours[i % len(colours)] for i in range(len(labels))])
             for i, v in enumerate(vals):
                 if not np.isfinite(v):
                     ax.text(x[i], 0, "n/a", ha="center", va="bottom", fontsize=8)
@@ -476,10 +494,9 @@ class Comparison:
             ax.set_title(title, fontsize=10)
             ax.set_ylabel(f"{title} [{ulabel}]" if ulabel else title)
             ax.grid(axis="y", alpha=0.3)
-            _ = bars
         for ax in list(axes.flat)[n:]:
             ax.set_visible(False)
-        handles = [plt.Rectangle((0, 0), 1, 1, color=colours[i % len(colours)]) for i in range(len(labels))]
+        handles = [Rectangle((0, 0), 1, 1, color=colours[i % len(colours)]) for i in range(len(labels))]
         fig.legend(handles, labels, loc="upper center", ncol=min(len(labels), 4), fontsize=8, frameon=False)
         fig.tight_layout(rect=(0, 0, 1, 0.92))
         return fig
@@ -568,7 +585,10 @@ def compare(scenarios, *, seeds=(0,), trials=1, executor=None, progress=False):
         row = {"label": s.name, "actuator": type(s.actuator).__name__, "runs": len(runs),
                "errors": len(runs) - len(ok), "error_messages": [r["error"] for r in runs if "error" in r]}
         units = sorted({c.unit for c in s.actuator.channels})
-        row["energy_unit"] = f"{units[0]}^2 s" if len(units) == 1 else "mixed units"
+        if len(units) != 1:
+            row["energy_unit"] = "mixed units"
+        else:
+            row["energy_unit"] = "s" if units[0] in ("1", "") else f"{units[0]}^2 s"
         for key, _, _ in METRICS:
             if key == "steerability":
                 continue

@@ -136,7 +136,7 @@ def plot_workspace(workspace, bodies, starts, goals, *, routes=None, trajectorie
         if np.any(np.isfinite(sp)):
             sf, su = _speed_unit(float(np.nanmax(sp)))
             mesh = ax.pcolormesh(xs * f, ys * f, sp * sf, shading="auto", cmap="viridis", alpha=0.55, zorder=0)
-            fig.colorbar(mesh, ax=ax, label=f"fastest single-primitive speed of {bodies[0].name} [{su}]")
+            fig.colorbar(mesh, ax=ax, shrink=0.85, label=f"fastest single-primitive speed of {bodies[0].name} [{su}]")
     _draw_workspace(ax, workspace, f)
     colours = [f"C{i % 10}" for i in range(len(bodies))]
     starts = np.asarray(starts, dtype=float)
@@ -171,7 +171,7 @@ def plot_workspace(workspace, bodies, starts, goals, *, routes=None, trajectorie
     ax.set_xlabel(f"x [{unit}]")
     ax.set_ylabel(f"y [{unit}]")
     ax.set_title(title or "workspace")
-    ax.legend(loc="upper right", fontsize=7, framealpha=0.8)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.1), ncol=4, fontsize=7, frameon=False)
     return fig
 
 

@@ -56,6 +56,9 @@ BAD = _Bad()
 # YAML with line numbers
 # ----------------------------------------------------------------------------------------------
 
+# Tags of plain data; anything else (!!python/..., !!binary, timestamps) is refused.
+_PLAIN_TAGS = {f"tag:yaml.org,2002:{t}" for t in ("str", "int", "float", "bool", "null", "seq", "map")}
+
 # PyYAML follows YAML 1.1, where "1e-6" (no dot) is a string; users mean a number.
 _EXP_FLOAT = re.compile(r"^[-+]?(\d+\.?\d*|\.\d+)[eE][-+]?\d+$")
 
@@ -145,13 +148,19 @@ def read_yaml(text, file="<scenario>"):
         try:
             node = loader.get_single_node()
         except yaml.MarkedYAMLError as exc:
-            mark = exc.problem_mark or exc.context_mark
+            # The context mark is where the broken construct began (an unclosed bracket, a key
+            # missing its colon); the problem mark is where the parser noticed. Point at the first.
+            mark = exc.context_mark or exc.problem_mark
             line = mark.line + 1 if mark is not None else None
             what = exc.problem or str(exc)
             ctx = f" ({exc.context})" if exc.context else ""
+            noticed = ""
+            if exc.problem_mark is not None and exc.context_mark is not None and \
+                    exc.problem_mark.line != exc.context_mark.line:
+                noticed = f", noticed on line {exc.problem_mark.line + 1}"
             raise ScenarioError([(file, line, _nearest_key(text, line or 1),
-                                  f"malformed YAML: {what}{ctx}. Check indentation, colons and quotes "
-                                  "on this line or the one above.")]) from None
+                                  f"malformed YAML: {what}{ctx}{noticed}. Check indentation, colons, quotes and "
+                                  "brackets on this line or the one above.")]) from None
         except yaml.YAMLError as exc:
             raise ScenarioError([(file, None, "(document)", f"cannot read YAML: {exc}")]) from None
         lines = {}
@@ -160,6 +169,11 @@ def read_yaml(text, file="<scenario>"):
         lines[()] = node.start_mark.line + 1
 
         def walk(n, path):
+            if n.tag not in _PLAIN_TAGS:
+                problems.append((file, n.start_mark.line + 1, key_string(path) or "(top level)",
+                                 f"YAML tag {n.tag!r} is not allowed: scenario files hold plain data only "
+                                 "(numbers, text, lists, mappings)."))
+                return None
             if isinstance(n, yaml.MappingNode):
                 loader.flatten_mapping(n)
                 out = {}
@@ -360,7 +374,7 @@ PLOT_NAMES = ("workspace", "timeline", "inputs")
 
 #: Units of the PlanSettings fields (the rest are plain numbers, integers or booleans).
 PLANNER_UNITS = {"period": "s", "tolerance": "m", "time_limit": "s", "clearance": "m",
-                 "route_resolution": "m", "max_step": "m", "trust_region": "m", "goal_hold": "s",
+                 "route_resolution": "m", "max_trust": "m", "max_step": "m", "trust_region": "m", "goal_hold": "s",
                  "step_time_limit": "s", "separation": "m", "duration": "s", "max_time": "s"}
 
 # Fields of PlanSettings from the API note, used until fieldplan.plan exists.
@@ -816,6 +830,9 @@ def _bodies(ctx, kinds):
         if not _check_keys(ctx, p, spec, "bodies[]"):
             ok = False
             continue
+        if any(k.required and k.name not in spec for k in SCHEMA["bodies[]"]):
+            ok = False
+            continue
         v = _read_keys(ctx, p, spec, "bodies[]")
         if v["count"] is not BAD and v["count"] is not None and v["count"] < 1:
             v["count"] = ctx.err(p + ("count",), f"must be a whole number >= 1, found {spec['count']!r}.")
@@ -980,49 +997,66 @@ def _si_params(ctx, path, value, units=None):
 
 
 _UNITISH = re.compile(r"^[A-Za-z°µ][A-Za-z0-9_/*^ .·\-]*$")
-_NOT_UNITS = {"at", "in", "or", "and", "of", "per", "the", "a", "an", "to", "one", "each", "from", "with", "is"}
+# Unit symbols a docstring may state a parameter's unit with (pint alone would also read "ymin" as
+# yocto-minutes, so only pieces made of these symbols count as units).
+_SI_SYMBOLS = {"m", "s", "A", "V", "Hz", "N", "T", "K", "W", "J", "Pa", "S", "F", "Ohm", "ohm", "kg", "C",
+               "rad", "degC", "H", "Wb", "g", "mol", "L"}
 
 
 def actuator_params(cls):
-    """Constructor parameters of an actuator class: ``{name: (default, unit or None)}``.
+    """Constructor parameters of an actuator class (or of a nested object class).
 
-    The unit is read from the numpydoc ``Parameters`` section of the class docstring, as the comma
-    separated piece of the description that is a unit (``"Source positions, m."``); it is used to
-    check the dimension of unit strings in a scenario.
+    Returns
+    -------
+    dict
+        ``{name: (default, unit or None)}``; ``default`` is a private marker for required
+        parameters. The unit is read from the numpydoc ``Parameters`` section of the class
+        docstring, as the comma-separated piece of the description that is a unit (``"Source
+        positions, m."``); it is used to check the dimension of unit strings in a scenario.
     """
+    return {n: (d, u) for n, (d, u, _) in _param_info(cls).items()}
+
+
+def _param_info(cls):
+    """``{name: (default, unit, numpydoc type text)}`` of a class's constructor."""
     target = cls.__init__ if isinstance(cls, type) else cls
     try:
         sig = inspect.signature(target)
     except (TypeError, ValueError):
         return {}
     doc = inspect.getdoc(cls) or ""
-    units = _doc_units(doc)
+    units, types = _doc_params(doc)
     out = {}
     for n, p in sig.parameters.items():
         if n == "self" or p.kind in (p.VAR_POSITIONAL, p.VAR_KEYWORD):
             continue
-        out[n] = (p.default if p.default is not inspect.Parameter.empty else _MISSING, units.get(n))
+        default = p.default if p.default is not inspect.Parameter.empty else _MISSING
+        if default is None and dataclasses.is_dataclass(cls):
+            f = {x.name: x for x in dataclasses.fields(cls)}.get(n)
+            if f is not None and f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
+                default = _MISSING
+        out[n] = (default, units.get(n), types.get(n, ""))
     return out
 
 
-def _doc_units(doc):
+def _doc_params(doc):
     from .units import ureg  # noqa: PLC0415
 
-    units = {}
+    units, types = {}, {}
     m = re.search(r"Parameters\n-+\n(.*?)(\n\S[^\n]*\n-+\n|\Z)", doc, re.S)
     if not m:
-        return units
+        return units, types
     block = m.group(1)
-    entries = re.findall(r"^(\S[^\n:]*?)\s*:[^\n]*\n((?:[ \t]+[^\n]*\n?)*)", block, re.M)
-    for names, desc in entries:
+    entries = re.findall(r"^(\S[^\n:]*?)\s*:([^\n]*)\n((?:[ \t]+[^\n]*\n?)*)", block, re.M)
+    for names, typ, desc in entries:
         first = " ".join(desc.split())
-        first = re.split(r"(?<=[a-z0-9)])\.\s", first + " ")[0]
-        pieces = [re.sub(r"\(.*?\)", "", s).strip().rstrip(".").strip() for s in first.split(",")[1:]]
+        first = re.split(r"(?<=[a-z0-9)])\.\s", first + " ")[0].strip().rstrip(".")
+        first = re.sub(r"\([^()]*\)", " ", first)
         unit = None
-        for piece in pieces:
-            if not piece or not _UNITISH.match(piece) or piece.lower() in _NOT_UNITS or len(piece) > 16:
-                continue
-            if any(w.lower() in _NOT_UNITS for w in piece.split()):
+        for piece in re.split(r"[,;]", first):
+            piece = piece.strip()
+            tokens = re.findall(r"[A-Za-z]+", piece)
+            if not tokens or not _UNITISH.match(piece) or not all(t in _SI_SYMBOLS for t in tokens):
                 continue
             try:
                 u = ureg().Unit(piece.replace("^", "**"))
@@ -1032,10 +1066,71 @@ def _doc_units(doc):
                 continue
             unit = piece.replace("^", "**")
             break
-        if unit:
-            for name in names.split(","):
-                units[name.strip()] = unit
-    return units
+        for name in names.split(","):
+            name = name.strip()
+            types[name] = typ.strip()
+            if unit:
+                units[name] = unit
+    return units, types
+
+
+def _nested_class(cls, typ):
+    """The class named in a parameter's numpydoc type (``"sequence of Coil"``), from cls's module."""
+    import importlib  # noqa: PLC0415
+
+    try:
+        mod = importlib.import_module(cls.__module__)
+    except Exception:  # noqa: BLE001
+        return None, None
+    m = re.match(r"^(?:(sequence|list|tuple) of )?([A-Z]\w*)\b", typ)
+    if not m:
+        return None, None
+    obj = getattr(mod, m.group(2), None)
+    if not isinstance(obj, type):
+        return None, None
+    return obj, bool(m.group(1))
+
+
+def _param_value(ctx, path, value, cls, info):
+    """One constructor argument from scenario data: unit strings to SI, nested objects built."""
+    _, unit, typ = info if info is not None else (None, None, "")
+    nested, many = _nested_class(cls, typ) if isinstance(cls, type) else (None, None)
+    if nested is not None:
+        fields = _param_info(nested)
+        if many and isinstance(value, list) and value and all(isinstance(v, dict) for v in value) \
+                and all(set(v) <= set(fields) for v in value):
+            items = [_build_object(ctx, path + (i,), nested, v, fields) for i, v in enumerate(value)]
+            return BAD if any(x is BAD for x in items) else items
+        if not many and isinstance(value, dict) and set(value) <= set(fields):
+            return _build_object(ctx, path, nested, value, fields)
+        if many and isinstance(value, list) and value and all(isinstance(v, dict) for v in value):
+            # A list of mappings meant as nested objects but with unknown keys: say which.
+            for i, v in enumerate(value):
+                for k in v:
+                    if k not in fields:
+                        close = difflib.get_close_matches(k, list(fields), n=1, cutoff=0.6)
+                        hint = f" Did you mean {close[0]!r}?" if close else ""
+                        ctx.err(path + (i, k), f"{nested.__name__} has no parameter {k!r}.{hint} Its parameters: "
+                                               f"{', '.join(fields)}.")
+            return BAD
+    return _si_params(ctx, path, value, unit)
+
+
+def _build_object(ctx, path, cls, spec, fields):
+    """``cls(**spec)`` with unit conversion, every problem reported at its key."""
+    n0 = len(ctx.problems)
+    missing = [n for n, (d, _, _) in fields.items() if d is _MISSING and n not in spec]
+    for n in missing:
+        ctx.err(path, f"missing required parameter {n!r} of {cls.__name__}.")
+    kw = {k: _param_value(ctx, path + (k,), v, cls, fields.get(k)) for k, v in spec.items()}
+    if len(ctx.problems) > n0:
+        return BAD
+    try:
+        return cls(**kw)
+    except Exception as exc:  # noqa: BLE001 - the nested class's own validation is the user's feedback
+        msg = f"{exc}" if isinstance(exc, (FieldplanError, ValueError)) else f"{type(exc).__name__}: {exc}"
+        key = next((k for k in sorted(spec, key=len, reverse=True) if re.search(rf"\b{re.escape(k)}\b", msg)), None)
+        return ctx.err(path + ((key,) if key else ()), f"cannot build {cls.__name__}: {msg}")
 
 
 def _registry_name(cls):
@@ -1074,7 +1169,7 @@ def _actuator(ctx, path, spec, base=None):
         return ctx.err(tpath, str(exc)), None
     params = {k: vp for k, vp in merged.items() if k != "type"}
     factory = getattr(cls, "from_config", None) if isinstance(cls, type) else None
-    info = actuator_params(cls) if isinstance(cls, type) or callable(cls) else {}
+    info = _param_info(cls) if isinstance(cls, type) or callable(cls) else {}
     if factory is None and info:
         allowed = list(info)
         for k, (_, kp) in params.items():
@@ -1082,13 +1177,13 @@ def _actuator(ctx, path, spec, base=None):
                 close = difflib.get_close_matches(k, allowed, n=1, cutoff=0.6)
                 hint = f" Did you mean {close[0]!r}?" if close else ""
                 ctx.err(kp, f"{tname} has no parameter {k!r}.{hint} Its parameters: {', '.join(allowed)}.")
-        missing = [n for n, (d, _) in info.items() if d is _MISSING and n not in params]
+        missing = [n for n, (d, _, _) in info.items() if d is _MISSING and n not in params]
         for n in missing:
             ctx.err(path, f"missing required parameter {n!r} of {tname}.")
         if missing or any(k not in allowed for k in params):
             return BAD, None
     n_before = len(ctx.problems)
-    kw = {k: _si_params(ctx, kp, v, info.get(k, (None, None))[1]) for k, (v, kp) in params.items()}
+    kw = {k: _param_value(ctx, kp, v, cls, info.get(k)) for k, (v, kp) in params.items()}
     if len(ctx.problems) > n_before:
         return BAD, None
     try:
@@ -1101,7 +1196,7 @@ def _actuator(ctx, path, spec, base=None):
     if not isinstance(act, Actuator):
         return ctx.err(tpath, f"{tname!r} did not produce a fieldplan.Actuator (got {type(act).__name__})."), None
     spec_out = {"type": tname}
-    spec_out.update({k: v for k, (v, _) in params.items()})
+    spec_out.update({k: _si_params(_Ctx(ctx.doc), kp, v) for k, (v, kp) in params.items()})
     return act, spec_out
 
 
@@ -1289,8 +1384,27 @@ def _outputs(ctx, spec):
 # Whole documents
 # ----------------------------------------------------------------------------------------------
 
-def _build(ctx, data, name, variant_of=None):
-    """Build one scenario from (merged) top-level data; returns Scenario or BAD."""
+def _build(ctx, data, name):
+    """Build one scenario from (merged) top-level data; returns Scenario or BAD.
+
+    Warnings raised while the objects are built (an actuator's resolution warning, say) become
+    scenario warnings naming the section.
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        out = _build_sections(ctx, data, name)
+    seen = set()
+    for w in caught:
+        text = f"{w.category.__name__}: {w.message}"
+        if text in seen:
+            continue
+        seen.add(text)
+        section = "actuator" if w.category is not RuntimeWarning or "actuator" in str(w.message).lower() else ""
+        ctx.warn((section,) if section else (), text)
+    return out
+
+
+def _build_sections(ctx, data, name):
     medium = _medium(ctx, data.get("medium"))
     workspace = _workspace(ctx, data["workspace"], medium) if "workspace" in data else BAD
     kinds = _bodies(ctx, data["bodies"]) if "bodies" in data else BAD
@@ -1511,9 +1625,7 @@ def load_scenario(path_or_text, *, name=None):
         except (OSError, UnicodeDecodeError) as exc:
             raise ScenarioError([(file, None, "(file)", f"cannot read the file ({exc}).")]) from None
     doc = read_yaml(text, file)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return parse_scenario(doc, name=name)
+    return parse_scenario(doc, name=name)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1534,6 +1646,8 @@ def _plain(v):
         return int(v)
     if isinstance(v, (np.bool_,)):
         return bool(v)
+    if dataclasses.is_dataclass(v) and not isinstance(v, type):
+        return {f.name: _plain(getattr(v, f.name)) for f in dataclasses.fields(v)}
     return v
 
 
@@ -1549,7 +1663,8 @@ def _shape_dict(g):
         c = np.array([(x0 + x1) / 2, (y0 + y1) / 2])
         r = np.linalg.norm(pts - c, axis=1)
         if np.ptp(r) <= 1e-9 * r.max() and len(pts) % 4 == 0:
-            return {"circle": {"center": c.tolist(), "radius": float(r.max())}}
+            # 12 significant digits drop the buffer's round-off, so object -> YAML -> object is stable.
+            return {"circle": {"center": [float(f"{v:.12g}") for v in c], "radius": float(f"{r.max():.12g}")}}
     return {"polygon": [list(c) for c in list(g.exterior.coords)[:-1]]}
 
 
@@ -1608,12 +1723,12 @@ def scenario_to_dict(sc):
         "bodies": bodies,
         "starts": {"positions": _plain(sc.starts)},
         "goals": {"positions": _plain(sc.goals), "unlabelled": bool(sc.assign_goals)},
-        "actuator": _actuator_config(sc.actuator),
+        "actuator": sc.config.get("actuator") or _actuator_config(sc.actuator),
     }
     if sc.description:
         out["description"] = sc.description
     if sc.truth is not None:
-        out["truth"] = _actuator_config(sc.truth)
+        out["truth"] = sc.config.get("truth") or _actuator_config(sc.truth)
     if sc.limits is not None:
         lim = sc.limits.to_dict()
         chans = {k: v for k, v in lim["channels"].items() if v}
