@@ -38,10 +38,12 @@ so the file holds data, not solver internals.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import hashlib
 import json
 import os
+import re
 import warnings
 from dataclasses import dataclass, field
 
@@ -984,6 +986,21 @@ def _resolve_bodies(bodies, kinds):
     return out
 
 
+def _body_param(name, body_of):
+    """``"body.radius"`` -> (None, "radius"); ``"body[bead-2um].radius"`` -> ("bead-2um", "radius")."""
+    from .body import Body
+
+    m = re.fullmatch(r"body(?:\[([^\]]+)\])?\.(\w+)", name)
+    allowed = [f.name for f in dataclasses.fields(Body) if f.name not in ("name", "extra", "shell")]
+    if not m or m.group(2) not in allowed:
+        raise CalibrationError(f"parameter {name!r}: body parameters are written 'body.<field>' or "
+                               f"'body[<kind>].<field>' with a numeric Body field {allowed}.")
+    kind = m.group(1)
+    if kind is not None and kind not in body_of:
+        raise CalibrationError(f"parameter {name!r}: no body of kind {kind!r}; kinds: {sorted(map(str, body_of))}.")
+    return kind, m.group(2)
+
+
 def _resolve_inputs(actuator, samples, inputs):
     chans = actuator.channels
     names = [c.name for c in chans]
@@ -1030,10 +1047,13 @@ def fit_parameters(actuator_factory, param_names, initial, samples, bodies, medi
 
     Parameters
     ----------
-    actuator_factory : callable
-        ``actuator_factory(**params) -> Actuator`` (a class works).
+    actuator_factory : callable or Actuator
+        ``actuator_factory(**params) -> Actuator`` (a class works); an Actuator instance when
+        only body parameters are fitted.
     param_names : sequence of str
-        Parameters to fit (keyword arguments of the factory).
+        Parameters to fit: keyword arguments of the factory, and body fields written
+        ``"body.<field>"`` (every body) or ``"body[<kind>].<field>"`` (one kind), e.g.
+        ``"body.drift_mobility"``; other body fields are kept (``dataclasses.replace``).
     initial : sequence of float or dict
         Starting values, in the parameters' units.
     samples : VelocitySamples or TrackingData
@@ -1116,30 +1136,48 @@ def fit_parameters(actuator_factory, param_names, initial, samples, bodies, medi
             raise CalibrationError(f"bounds must have lower < upper and contain initial; got {lb.tolist()}, "
                                    f"{ub.tolist()}, initial {p0.tolist()}.")
 
-    def build(theta):
-        params = dict(zip(names, (theta * scale).tolist()))
-        try:
-            return actuator_factory(**params, **fixed)
-        except FieldplanError as exc:
-            raise CalibrationError(
-                f"the actuator factory rejected parameters {params} ({exc}); constrain them with bounds=.") from None
-
-    act0 = build(p0 / scale)
     kinds = list(dict.fromkeys(samples.kind.tolist()))
     body_of = _resolve_bodies(bodies, kinds)
+    body_params = {n: _body_param(n, body_of) for n in names if n.startswith("body")}
+    if isinstance(actuator_factory, Actuator):
+        act_names = [n for n in names if n not in body_params]
+        if act_names:
+            raise CalibrationError(f"parameters {act_names} need an actuator factory, but an Actuator instance "
+                                   "was given (it can only be combined with 'body.<field>' parameters).")
+        fixed_actuator = actuator_factory
+    else:
+        fixed_actuator = None
+
+    def build(theta):
+        params = dict(zip(names, (theta * scale).tolist()))
+        act_kw = {n: v for n, v in params.items() if n not in body_params}
+        try:
+            act = fixed_actuator if fixed_actuator is not None else actuator_factory(**act_kw, **fixed)
+            bodies_now = dict(body_of)
+            for n, (kind_sel, attr) in body_params.items():
+                for k in bodies_now:
+                    if kind_sel is None or k == kind_sel:
+                        bodies_now[k] = dataclasses.replace(bodies_now[k], **{attr: params[n]})
+        except FieldplanError as exc:
+            raise CalibrationError(
+                f"the actuator factory or Body rejected parameters {params} ({exc}); constrain them with "
+                "bounds=.") from None
+        return act, bodies_now
+
+    act0, _ = build(p0 / scale)
     u_of = _resolve_inputs(act0, samples, inputs)
-    groups = [(body_of[k], u_of[p], idx) for k, p, idx in samples.groups()]
+    groups = [(k, u_of[p], idx) for k, p, idx in samples.groups()]
     w = 1.0 / samples.sigma if weighted else np.ones(len(samples))
     if weighted and not np.all(np.isfinite(w) & (w > 0)):
         w = np.ones(len(samples))
     w = w / np.mean(w)
 
     def residuals(theta):
-        act = build(theta)
+        act, body_now = build(theta)
         r = np.empty_like(samples.velocity)
-        for body, u, idx in groups:
+        for kind, u, idx in groups:
             try:
-                r[idx] = act.velocity(body, medium, samples.xy[idx], u) - samples.velocity[idx]
+                r[idx] = act.velocity(body_now[kind], medium, samples.xy[idx], u) - samples.velocity[idx]
             except FieldplanError as exc:
                 raise CalibrationError(
                     f"the actuator with parameters {dict(zip(names, (theta * scale).tolist()))} failed to "

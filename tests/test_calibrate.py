@@ -389,3 +389,23 @@ def test_shipped_fitted_actuator_matches_shipped_data():
     body = fieldplan.Body("bead-2um", radius=2e-6, density=1050.0)
     check_actuator(act, [body], WATER)
     assert act.idle_primitive == "idle" and len(act.primitives()) == 4
+
+
+def test_greybox_body_parameter():
+    """A body field (here the radius, through the Stokes/Faxen drag) is fitted like an actuator
+    parameter; the 95 % interval contains the truth."""
+    bead = fieldplan.Body("bead", radius=2e-6, density=1100.0, height=5e-6)
+    starts = np.random.default_rng(21).uniform(2e-4, 8e-4, (10, 2))
+    data = synthetic_tracks(truth(), bead, WATER, starts, PROGRAM, noise=0.3e-6, rng=22)
+    s = velocity_samples(data)
+    guess = fieldplan.Body("bead", radius=3e-6, density=1100.0, height=5e-6)
+    res = fit_parameters(truth(), ["body.radius"], [3e-6], s, guess, WATER)
+    assert res.lower[0] < 2e-6 < res.upper[0] and res.stderr[0] < 0.05e-6
+    with pytest.warns(CalibrationWarning, match="density"):
+        res2 = fit_parameters(_source_factory, ["force", "body[bead].density"], [1e-12, 1000.0], s, guess, WATER,
+                              fixed={"core": 3e-4})
+    assert np.isinf(res2.stderr[1])                 # density does not enter overdamped motion
+    with pytest.raises(CalibrationError, match="need an actuator factory"):
+        fit_parameters(truth(), ["force"], [1e-12], s, guess, WATER)
+    with pytest.raises(CalibrationError, match="'body.colour'"):
+        fit_parameters(truth(), ["body.colour"], [1.0], s, guess, WATER)
