@@ -133,11 +133,11 @@ def _loop_terms(rho, z, a, gradient=False):
     Returns
     -------
     F : ndarray
-        ``B_rho / rho`` per C (finite on the axis), 1/m^2... in units of C.
+        ``B_rho / rho`` per C, 1/m^2 (finite on the axis).
     Bz : ndarray
-        ``B_z`` per C.
+        ``B_z`` per C, 1/m.
     P, Q : ndarray or None
-        With ``gradient``: ``rho dF/drho`` and ``dF/dz`` per C. The whole Jacobian follows from
+        With ``gradient``: ``rho dF/drho`` and ``dF/dz`` per C, 1/m^3. The whole Jacobian follows from
         F, P and Q because the field is curl- and divergence-free.
     """
     ap = a + rho
@@ -452,9 +452,8 @@ class Coil:
         if c.shape != (3,) or not np.all(np.isfinite(c)):
             raise ActuatorError(f"Coil center must be 3 finite numbers (m), got {self.center!r}.")
         object.__setattr__(self, "center", tuple(float(v) for v in c))
-        ax = _unit_vector(self.axis, "Coil axis")
+        _unit_vector(self.axis, "Coil axis")      # validates; the axis is stored as given
         object.__setattr__(self, "axis", tuple(float(v) for v in np.asarray(self.axis, dtype=float)))
-        del ax
         object.__setattr__(self, "radius", _positive("Coil radius", self.radius))
         object.__setattr__(self, "turns", _positive("Coil turns", self.turns))
         object.__setattr__(self, "length", _positive("Coil length", self.length, allow_zero=True))

@@ -714,3 +714,24 @@ def test_to_config_round_trip(coils4):
         np.testing.assert_array_equal(back.velocity(SAT, MED, xy, u), arr.velocity(SAT, MED, xy, u))
         assert [p.name for p in back.primitives()] == [p.name for p in arr.primitives()]
         assert back.tags == arr.tags
+
+
+def test_j_function_both_regimes():
+    # J(m) = int_0^{pi/2} sin^4 t (1 - m sin^2 t)^(-3/2) dt (the module's cancellation-free kernel)
+    # against direct quadrature of that integral (scipy.integrate.quad) and against its
+    # hypergeometric form (3 pi/16) 2F1(3/2, 5/2; 3; m) (Euler's integral for 2F1 [pub], here
+    # evaluated by scipy.special.hyp2f1), on both sides of the series / closed-form switch.
+    from scipy.integrate import quad
+    from scipy.special import hyp2f1
+
+    from actuators.magnetic import _M_SWITCH, _j_function
+
+    m = np.array([0.0, 1e-8, 0.01, 0.1, 0.2, _M_SWITCH * (1 - 1e-12), _M_SWITCH, 0.3, 0.6, 0.9, 0.99])
+    J, dJ, *_ = _j_function(m, 1 - m, True)
+    hyp = 3 * np.pi / 16 * hyp2f1(1.5, 2.5, 3.0, m)
+    dhyp = 3 * np.pi / 16 * (1.5 * 2.5 / 3.0) * hyp2f1(2.5, 3.5, 4.0, m)
+    np.testing.assert_allclose(J, hyp, rtol=1e-13)
+    np.testing.assert_allclose(dJ, dhyp, rtol=1e-12)
+    for mi, Ji in zip(m[:8], J[:8]):
+        ref = quad(lambda t: np.sin(t) ** 4 / (1 - mi * np.sin(t) ** 2) ** 1.5, 0, np.pi / 2, epsabs=0, epsrel=1e-13)[0]
+        assert abs(Ji / ref - 1) < 1e-12
