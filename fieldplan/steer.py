@@ -708,14 +708,14 @@ def _rref_rows(N, tol=1e-9):
     return R / np.linalg.norm(R, axis=1, keepdims=True)
 
 
-def _combo_text(c):
+def _combo_text(c, labels):
     """'vx0 + vx1' style text for a direction in R^{2n}."""
     c = np.asarray(c).reshape(-1)
     big = np.abs(c).max()
     terms = []
     for j in np.flatnonzero(np.abs(c) > 1e-6 * big):
         a = c[j] / big
-        name = f"v{'xy'[j % 2]}{j // 2}"
+        name = f"v{'xy'[j % 2]}{labels[j // 2]}"
         mag = "" if abs(abs(a) - 1) < 1e-6 else f"{abs(a):.3g} "
         sign = "-" if a < 0 else "+"
         terms.append((sign, mag + name))
@@ -730,25 +730,26 @@ def _fmt_dir(v):
     return f"({v[0]:g}, {v[1]:g})"
 
 
-def _describe(c, two_sided, rate):
+def _describe(c, two_sided, rate, labels):
     c = np.asarray(c).reshape(-1, 2)
-    bodies = tuple(int(i) for i in np.flatnonzero(np.linalg.norm(c, axis=1) > 1e-6 * np.abs(c).max()))
-    combo, big = _combo_text(c)
+    idx = np.flatnonzero(np.linalg.norm(c, axis=1) > 1e-6 * np.abs(c).max())
+    combo, big = _combo_text(c, labels)
+    bodies = tuple(labels[i] for i in idx)
     scaled_rate = rate / big
     if two_sided:
         if len(bodies) == 1:
-            head = f"body {bodies[0]} cannot move along {_fmt_dir(c[bodies[0]])}"
+            head = f"body {bodies[0]} cannot move along {_fmt_dir(c[idx[0]])}"
         else:
             head = f"bodies {', '.join(map(str, bodies))} cannot be moved independently"
         return bodies, f"{head}: {combo} = {scaled_rate:.3g} m/s for every input"
     if len(bodies) == 1:
-        head = f"body {bodies[0]} cannot move towards {_fmt_dir(c[bodies[0]])}"
+        head = f"body {bodies[0]} cannot move towards {_fmt_dir(c[idx[0]])}"
     else:
         head = f"bodies {', '.join(map(str, bodies))}: one combined motion is one-way"
     return bodies, f"{head}: {combo} <= {scaled_rate:.3g} m/s for every input"
 
 
-def obstructions(basis, *, rtol=RTOL, max_one_sided=4, _vs=None, _t=None):
+def obstructions(basis, *, rtol=RTOL, max_one_sided=4, labels=None, _vs=None, _t=None):
     """Directions of combined motion that no input produces.
 
     Two-sided obstructions are the directions orthogonal to every field (the left null space
@@ -764,6 +765,9 @@ def obstructions(basis, *, rtol=RTOL, max_one_sided=4, _vs=None, _t=None):
     rtol : float
     max_one_sided : int
         At most this many one-sided directions are reported.
+    labels : sequence of int, optional
+        Body labels used in texts and ``Obstruction.bodies`` (default 0 .. n-1), e.g. the
+        original indices of a restricted basis.
 
     Returns
     -------
@@ -773,6 +777,9 @@ def obstructions(basis, *, rtol=RTOL, max_one_sided=4, _vs=None, _t=None):
     vs = _vs if _vs is not None else _VSet.from_basis(basis)
     n = basis.n_bodies
     D = 2 * n
+    labels = list(range(n)) if labels is None else [int(v) for v in labels]
+    if len(labels) != n:
+        raise ActuatorError(f"obstructions: labels must have one entry per body ({n}), got {len(labels)}.")
     s = vs.scale if vs.scale > 0 else 1.0
     out = []
     span = vs.span
@@ -787,7 +794,7 @@ def obstructions(basis, *, rtol=RTOL, max_one_sided=4, _vs=None, _t=None):
             rate = float(c @ vs.origin) * s
             if abs(rate) <= rtol * s:
                 rate = 0.0
-            bodies, text = _describe(c, True, rate)
+            bodies, text = _describe(c, True, rate, labels)
             out.append(Obstruction(c.reshape(n, 2), True, rate, bodies, text))
     if vs.scale == 0:
         return out
@@ -817,7 +824,7 @@ def obstructions(basis, *, rtol=RTOL, max_one_sided=4, _vs=None, _t=None):
         if any(abs(c @ f) > 1 - 1e-6 for f in found):
             continue
         found.append(c)
-        bodies, text = _describe(c, False, hc * s)
+        bodies, text = _describe(c, False, hc * s, labels)
         out.append(Obstruction(c.reshape(n, 2), False, hc * s, bodies, text))
     return out
 
@@ -1084,6 +1091,13 @@ class SpeedMap:
         """m/s, mean over free cells (dead cells count as 0)."""
         return float(np.nanmean(np.where(self.free, self.speed, np.nan))) if self.free.any() else 0.0
 
+    def summary(self):
+        """One line: mean and lowest speed over the free space, dead fraction."""
+        vals = self.speed[self.free]
+        low = float(vals.min()) if vals.size else 0.0
+        return (f"single body over {int(self.free.sum())} free cells: mean worst-direction speed "
+                f"{self.mean_speed * 1e6:.4g} um/s, lowest {low * 1e6:.4g} um/s, dead {100 * self.dead_fraction:.1f} %")
+
 
 def speed_map(basis_at, workspace, *, shape=(48, 48), radius=None, rtol=RTOL):
     """Worst-direction speed of one body over the workspace (dead zones where it is 0).
@@ -1160,6 +1174,12 @@ class CountCurve:
         """Largest N whose fraction is at least ``threshold`` (0 if none)."""
         ok = self.counts[self.fraction >= threshold]
         return int(ok.max()) if ok.size else 0
+
+    def summary(self):
+        """One line: fractions per N and the largest N steerable in at least half the trials."""
+        parts = ", ".join(f"N={n}: {f:.2f}" for n, f in zip(self.counts, self.fraction))
+        return (f"steerable fraction ({self.trials} random configurations each, K = {self.size} {self.mode}): "
+                f"{parts}; up to N = {self.max_steerable()} in at least half (counting limit K/2 = {self.counting_limit:g})")
 
 
 def _wilson(k, n, z=1.959963984540054):
@@ -1468,6 +1488,9 @@ def compare_designs(designs, bodies, workspace, *, counts=(1, 2, 3, 4), trials=2
     """
     if not isinstance(designs, dict) or not designs:
         raise ActuatorError("compare_designs: designs must be a non-empty dict of name -> Actuator.")
+    if not (isinstance(bodies, Body) or callable(bodies)):
+        raise ActuatorError("compare_designs: bodies must be a Body or a callable n -> list of Body "
+                            f"(the count curve needs any number of bodies), got {type(bodies).__name__}.")
     rows, maps, curves = [], {}, {}
     for name, act in designs.items():
         fn = basis_function(act, bodies, workspace.medium)
@@ -1518,7 +1541,7 @@ def symmetry_report(basis, *, rtol=RTOL):
     Returns
     -------
     SymmetryReport
-        Body indices in ``Obstruction`` texts of pairs refer to the pair (0 = first, 1 = second).
+        Obstruction texts use the bodies' indices in ``basis``.
     """
     speeds, _ = body_speeds(basis, rtol=rtol)
     stuck, ok = [], []
@@ -1526,13 +1549,13 @@ def symmetry_report(basis, *, rtol=RTOL):
         if speeds[i] > 0:
             ok.append(i)
             continue
-        obs = obstructions(restrict(basis, [i]), rtol=rtol)
+        obs = obstructions(restrict(basis, [i]), rtol=rtol, labels=[i])
         stuck.extend((i, o) for o in obs)
     pairs = []
     for a, b in itertools.combinations(ok, 2):
         sub = restrict(basis, [a, b])
         if not steerable(sub, rtol=rtol):
-            pairs.append((a, b, obstructions(sub, rtol=rtol)))
+            pairs.append((a, b, obstructions(sub, rtol=rtol, labels=[a, b])))
     return SymmetryReport(stuck, pairs)
 
 

@@ -496,3 +496,23 @@ def test_obstructions_of_a_blocked_body_and_pair():
     assert len(obs) == 2
     assert any(t.startswith("body 0 cannot move along (0, 1)") for t in texts)
     assert any("vx1 - vx2" in t and "cannot be moved independently" in t for t in texts)
+
+
+def test_summaries_and_labels():
+    act = SourceArray(ring_sources(6))
+    ws = Workspace((-0.5e-3, -0.5e-3, 0.5e-3, 0.5e-3), medium=water())
+    fn = basis_function(act, BEAD, ws.medium)
+    m = speed_map(fn, ws, shape=(5, 5))
+    assert "um/s" in m.summary() and "dead 0.0 %" in m.summary()
+    c = count_curve(fn, ws, [3, 4], trials=3, rng=1)
+    assert "N=3: 1.00" in c.summary() and "N=4: 0.00" in c.summary()
+    F = np.zeros((2, 3, 2))
+    F[0, 2] = [1e-6, 0]
+    F[1, 2] = [0, 1e-6]
+    obs = obstructions(restrict(lin_basis(F), [0]), labels=[7])
+    assert [o.bodies for o in obs] == [(7,), (7,)]
+    assert sorted(o.text.split(": ")[1].split(" =")[0] for o in obs) == ["vx7", "vy7"]
+    with pytest.raises(ActuatorError, match="labels"):
+        obstructions(lin_basis(F), labels=[1])
+    with pytest.raises(ActuatorError, match="bodies"):
+        compare_designs({"a": act}, [BEAD, BEAD], ws)
