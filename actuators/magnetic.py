@@ -734,20 +734,6 @@ def bead_force(body, B, G):
     return coef[..., None] * GtB
 
 
-def _bead_moment(body, B):
-    """Moment of the bead in field B (..., 3), A m^2 (for torques and plots)."""
-    model = bead_model(body)
-    if model == "fixed":
-        return np.broadcast_to(np.asarray(body.moment, dtype=float), np.shape(B)).copy()
-    chi_eff = effective_susceptibility(body.susceptibility)
-    m = body.volume * chi_eff / mu_0 * np.asarray(B, dtype=float)
-    if model == "saturating":
-        msat = body.saturation_magnetization * body.volume
-        mn = np.linalg.norm(m, axis=-1, keepdims=True)
-        m = np.where(mn > msat, m * msat / np.maximum(mn, 1e-300), m)
-    return m
-
-
 # --------------------------------------------------------------------------------------------
 # Grid interpolation on a working plane
 # --------------------------------------------------------------------------------------------
