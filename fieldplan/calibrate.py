@@ -685,7 +685,9 @@ class CalibratedActuator(Actuator):
         ActuatorError
             If ``u`` is neither a calibrated primitive nor the idle input.
         """
-        u = self.check_input(u)
+        return self._setting(self.check_input(u))
+
+    def _setting(self, u):
         scale = np.maximum(np.abs(self._table), 1e-300) if len(self._table) else 1.0
         hit = np.flatnonzero(np.all(np.abs(self._table - u) <= 1e-9 * scale + 1e-300, axis=1))
         if len(hit):
@@ -699,7 +701,7 @@ class CalibratedActuator(Actuator):
             "primitives() (FieldBasis mode 'timeshare') or record this setting and calibrate again.")
 
     def _velocity(self, body, medium, xy, u):
-        name = self.setting(u)
+        name = self._setting(u)
         if name is None:
             return np.zeros_like(xy)
         return self.field(name, body)(xy)

@@ -21,7 +21,7 @@ column           meaning
 ===============  ========================================================================
 ``track``        track identifier (any text); one track is one body
 ``time``         frame time, unit required (``s``, ``ms``, ...)
-``x``, ``y``     position, length unit required (``um``, ``mm``, ``m``, ``px`` is not a unit)
+``x``, ``y``     position, length unit required (``um``, ``mm``, ``m``; camera pixels are refused)
 ``primitive``    name of the active input setting (optional if channel columns are given)
 ``kind``         body kind, matched against :attr:`fieldplan.Body.name` (optional)
 any other        a channel value, with its unit in brackets (``[1]`` if dimensionless)
@@ -335,11 +335,15 @@ def _channel_si(unit, column, path):
 
 def _unit_factor(name, unit, kind, path):
     try:
-        return to_si(f"1 {unit}", kind, name=f"{path}: column {name!r} [{unit}]")
-    except UnitError:
-        raise
-    except FieldplanError as exc:  # pragma: no cover - to_si raises UnitError only
-        raise UnitError(str(exc)) from None
+        pint_name = str(ureg().Unit(unit.strip().replace("µ", "u").replace("μ", "u")))
+    except Exception:  # noqa: BLE001 - to_si below reports unreadable units
+        pint_name = ""
+    if "pixel" in pint_name or unit.strip().lower() in ("px", "pix", "pixel", "pixels"):
+        # pint reads "px" as a CSS pixel (1/96 inch), which is never a camera pixel.
+        raise UnitError(
+            f"{path}: column {name!r} is in [{unit}]: camera pixels are not a length unit. Convert the "
+            "positions with the camera's pixel size (e.g. x_um = x_px * 0.65) and declare a length unit.")
+    return to_si(f"1 {unit}", kind, name=f"{path}: column {name!r} [{unit}]")
 
 
 def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
@@ -390,7 +394,9 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
     if not os.path.exists(path):
         raise TrackingDataError("file not found.", path=path)
     with open(path, newline="", encoding="utf-8-sig") as fh:
-        raw = list(enumerate(csv.reader(fh), start=1))
+        reader = csv.reader(fh)
+        # line_num after reading a record is the file line it ended on (quoted cells may span lines).
+        raw = [(reader.line_num, r) for r in reader]
     rows = [(ln, r) for ln, r in raw if r and any(c.strip() for c in r) and not r[0].lstrip().startswith("#")]
     if not rows:
         raise TrackingDataError(
@@ -423,9 +429,9 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
                                     path=path, line=hline, column=n)
     for n, kind in (("time", "s"), ("x", "m"), ("y", "m")):
         if not declared[n]:
-            raise UnitError(
-                f"{path}:{hline}: column {n!r} has no unit; write it in the header as '{n} [{'s' if kind == 's' else 'um'}]' "
-                f"or pass units={{'{n}': ...}}.")
+            example = "s" if kind == "s" else "um"
+            raise UnitError(f"{path}:{hline}: column {n!r} has no unit; write it in the header as "
+                            f"'{n} [{example}]' or pass units={{'{n}': ...}}.")
     tf = _unit_factor("time", declared["time"], "s", path)
     xf = _unit_factor("x", declared["x"], "m", path)
     yf = _unit_factor("y", declared["y"], "m", path)

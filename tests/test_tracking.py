@@ -100,6 +100,9 @@ def test_units_from_header_and_argument(tmp_path):
         read_tracks(p2, units={"time": "s"})
     with pytest.raises(TrackingDataError, match="in the header but"):
         read_tracks(p, units={"x": "um"})
+    pixels = write(tmp_path, "track,time [s],x [px],y [px],primitive\n" + rows("a", t, x, y), "px.csv")
+    with pytest.raises(UnitError, match="camera pixels are not a length"):
+        read_tracks(pixels)
     wrong = write(tmp_path, "track,time [s],x [s],y [um],primitive\n" + rows("a", t, x, y), "d.csv")
     with pytest.raises(UnitError, match="dimension"):
         read_tracks(wrong)
