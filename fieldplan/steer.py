@@ -1159,6 +1159,10 @@ class CountCurve:
     mode : str
     counting_limit : float
         K/2: no affine actuator with K inputs steers more bodies than this in one step (rank).
+    rank_limit : float
+        Half the largest rank of the 2N x K field matrix seen in any trial, when that rank fell
+        short of 2N at the largest N tried (the fields then span fewer directions than K
+        suggests, e.g. a time-shared pair of opposite primitives adds one, not two); else nan.
     """
 
     counts: np.ndarray
@@ -1169,6 +1173,7 @@ class CountCurve:
     size: int
     mode: str
     counting_limit: float
+    rank_limit: float = np.nan
 
     def max_steerable(self, threshold=0.5):
         """Largest N whose fraction is at least ``threshold`` (0 if none)."""
@@ -1179,7 +1184,8 @@ class CountCurve:
         """One line: fractions per N and the largest N steerable in at least half the trials."""
         parts = ", ".join(f"N={n}: {f:.2f}" for n, f in zip(self.counts, self.fraction))
         return (f"steerable fraction ({self.trials} random configurations each, K = {self.size} {self.mode}): "
-                f"{parts}; up to N = {self.max_steerable()} in at least half (counting limit K/2 = {self.counting_limit:g})")
+                f"{parts}; up to N = {self.max_steerable()} in at least half (counting limit K/2 = {self.counting_limit:g}"
+                + (f", field rank / 2 = {self.rank_limit:g})" if np.isfinite(self.rank_limit) else ")"))
 
 
 def _wilson(k, n, z=1.959963984540054):
@@ -1194,7 +1200,7 @@ def _wilson(k, n, z=1.959963984540054):
 def _curve_trial(basis_at, workspace, n, radius, separation, seed, rtol):
     xy = workspace.sample(n, radius, np.random.default_rng(seed), separation=separation)
     b = basis_at(xy)
-    return steerable(b, rtol=rtol), b.size, b.mode
+    return steerable(b, rtol=rtol), b.size, b.mode, _rank(b)[0]
 
 
 def count_curve(basis_at, workspace, counts, *, trials=40, rng=0, radius=None, separation=None,
@@ -1243,12 +1249,14 @@ def count_curve(basis_at, workspace, counts, *, trials=40, rng=0, radius=None, s
         futs = [executor.submit(_curve_trial, basis_at, workspace, n, radius, separation, s, rtol) for _, n, s in jobs]
         results = (f.result() for f in futs)
     ok = np.zeros(len(counts))
-    size, mode = 0, ""
-    for (i, _, _), (good, size, mode) in zip(jobs, _progress(results, len(jobs), progress, "steerable fraction")):
+    size, mode, max_rank = 0, "", 0
+    for (i, _, _), (good, size, mode, rank) in zip(jobs, _progress(results, len(jobs), progress, "steerable fraction")):
         ok[i] += good
+        max_rank = max(max_rank, rank)
     frac = ok / trials
     low, high = _wilson(ok, trials)
-    return CountCurve(counts, frac, low, high, int(trials), int(size), mode, size / 2.0)
+    rank_limit = max_rank / 2.0 if max_rank < 2 * counts.max() else np.nan
+    return CountCurve(counts, frac, low, high, int(trials), int(size), mode, size / 2.0, rank_limit)
 
 
 # -- design: choose primitives -----------------------------------------------------------------------

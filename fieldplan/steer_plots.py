@@ -7,6 +7,7 @@ from matplotlib.colors import ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
+from matplotlib.ticker import MaxNLocator
 
 from .errors import ActuatorError
 from .steer import CountCurve, DesignComparison, SpeedMap
@@ -122,13 +123,18 @@ def plot_count_curve(curves, *, title=None, ax=None):
         ax = fig.add_subplot()
     else:
         fig = ax.figure
+    m = len(curves)
     for i, (name, c) in enumerate(curves.items()):
         color = f"C{i}"
         label = f"{name + ': ' if name else ''}K = {c.size} ({c.mode}), {c.trials} trials per N"
         yerr = np.vstack([c.fraction - c.low, c.high - c.fraction])
-        ax.errorbar(c.counts, c.fraction, yerr=yerr, marker="o", capsize=3, color=color, label=label)
-        ax.axvline(c.counting_limit, color=color, ls="--", lw=0.8)
-    ax.plot([], [], color="0.3", ls="--", lw=0.8, label="counting limit K/2")
+        # Dodge the curves sideways a little so equal curves stay visible.
+        x = c.counts + 0.08 * (i - (m - 1) / 2)
+        ax.errorbar(x, c.fraction, yerr=yerr, marker="o", capsize=3, color=color, label=label)
+        limit = c.rank_limit if np.isfinite(c.rank_limit) else c.counting_limit
+        ax.axvline(limit, color=color, ls="--", lw=0.8)
+    ax.plot([], [], color="0.3", ls="--", lw=0.8, label="counting limit: K/2, or field rank/2 if lower")
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel("number of bodies N")
     ax.set_ylabel("fraction of configurations steerable (1)")
     ax.set_ylim(-0.03, 1.03)

@@ -516,3 +516,13 @@ def test_summaries_and_labels():
         obstructions(lin_basis(F), labels=[1])
     with pytest.raises(ActuatorError, match="bodies"):
         compare_designs({"a": act}, [BEAD, BEAD], ws)
+
+
+def test_rank_limit_of_opposite_primitives():
+    """Time-shared +-u primitives of 4 affine channels give 8 fields but only rank 4: at most N = 2."""
+    act = SourceArray(ring_sources(4), affine=False)
+    ws = Workspace((-0.5e-3, -0.5e-3, 0.5e-3, 0.5e-3), medium=water())
+    c = count_curve(basis_function(act, BEAD, ws.medium), ws, [1, 2, 3], trials=4, rng=0)
+    assert c.size == 8 and c.counting_limit == 4.0
+    assert c.rank_limit == 2.0
+    assert c.fraction[2] == 0.0 and "field rank / 2 = 2" in c.summary()
