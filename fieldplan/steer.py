@@ -1185,7 +1185,7 @@ class CountCurve:
         parts = ", ".join(f"N={n}: {f:.2f}" for n, f in zip(self.counts, self.fraction))
         return (f"steerable fraction ({self.trials} random configurations each, K = {self.size} {self.mode}): "
                 f"{parts}; up to N = {self.max_steerable()} in at least half (counting limit K/2 = {self.counting_limit:g}"
-                + (f", field rank / 2 = {self.rank_limit:g})" if np.isfinite(self.rank_limit) else ")"))
+                + (f", field rank / 2 = {self.rank_limit:g})" if self.rank_limit < self.counting_limit else ")"))
 
 
 def _wilson(k, n, z=1.959963984540054):
