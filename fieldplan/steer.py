@@ -39,7 +39,7 @@ from __future__ import annotations
 import itertools
 import math
 import sys
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
@@ -194,7 +194,8 @@ def _axis_lp(vs, dirs, normals=False):
             return res.x[nv - 1::nv].copy(), y
         return res.x[nv - 1::nv].copy()
     # Phase one: blocks [A, I, -I] with slack cost.
-    ext = np.concatenate([blocks, np.broadcast_to(np.eye(r), (m, r, r)), np.broadcast_to(-np.eye(r), (m, r, r))], axis=2)
+    eye = np.broadcast_to(np.eye(r), (m, r, r))
+    ext = np.concatenate([blocks, eye, -eye], axis=2)
     c1 = np.r_[np.zeros(nv), np.ones(2 * r)]
     lb1, ub1 = np.r_[lb, np.zeros(2 * r)], np.r_[ub, np.full(2 * r, np.inf)]
     res = linprog(np.tile(c1, m), A_eq=_block_diag(ext), b_eq=np.tile(b, m),
@@ -414,8 +415,9 @@ class Steerability:
         The achievable velocity set contains a ball about zero velocity.
     speed : float
         m/s, worst-direction speed (radius of that ball; 0 when not steerable; ``nan`` when not
-        computed). For ``exact=False`` this is the upper bound ``speed_bounds[1]``, which in the
-        tests matched the exact value wherever that was known.
+        computed). For ``exact=False`` this is the upper bound ``speed_bounds[1]``; on random
+        cases with 2n <= 8, where the exact value is known, it matched in about 95 % of cases and
+        was within 2.5 % otherwise (tests/test_steer.py, and a 75-case study during development).
     speed_bounds : tuple of float
         (lower, upper), m/s; lower is rigorous, upper is the best direction found.
     exact : bool
@@ -638,7 +640,8 @@ def steerability(basis, *, method="auto", rtol=RTOL, starts=12, rng=0, max_candi
                             cond, svals, 0.0, [], n, K, basis.mode, "steerable")
     if plan == "qhull":
         r, c = _exact_qhull(vs)
-        return Steerability(True, r * s, (float(r * s), float(r * s)), True, "exact: nearest facet of the Qhull convex hull",
+        return Steerability(True, r * s, (float(r * s), float(r * s)), True,
+                            "exact: nearest facet of the Qhull convex hull",
                             c.reshape(n, 2), axis_speeds, rank, cond, svals, 0.0, [], n, K, basis.mode,
                             "steerable")
 
@@ -675,10 +678,12 @@ def steerability(basis, *, method="auto", rtol=RTOL, starts=12, rng=0, max_candi
     j = int(np.argmin(h))
     upper, worst = float(h[j]), C[j]
     lower = min(lower, upper)
-    how = (f"bounds: upper = LP local search from {len(C)} starts (facet normals at the axis points first); lower = cross-polytope of "
+    how = (f"bounds: upper = LP local search from {len(C)} starts (facet normals at the axis points first); "
+           f"lower = cross-polytope of "
            f"axis speeds{' and inscribed ellipsoid' if vs.kind == 'zonotope' else ''} (rigorous); "
            f"bracket ratio {upper / lower:.3g} (never above sqrt(2n) = {math.sqrt(D):.3g})")
-    return Steerability(True, upper * s, (float(lower * s), float(upper * s)), False, how, worst.reshape(n, 2), axis_speeds,
+    return Steerability(True, upper * s, (float(lower * s), float(upper * s)), False, how, worst.reshape(n, 2),
+                        axis_speeds,
                         rank, cond, svals, 0.0, [], n, K, basis.mode, "steerable")
 
 
@@ -1007,7 +1012,8 @@ class basis_function:
 
     def __init__(self, actuator, bodies, medium):
         if not isinstance(actuator, Actuator):
-            raise ActuatorError(f"basis_function: actuator must be a fieldplan.Actuator, got {type(actuator).__name__}.")
+            raise ActuatorError("basis_function: actuator must be a fieldplan.Actuator, got "
+                                f"{type(actuator).__name__}.")
         self.actuator = actuator
         self.bodies = bodies
         self.medium = medium
@@ -1036,16 +1042,6 @@ class basis_function:
     def __call__(self, xy):
         xy = np.atleast_2d(np.asarray(xy, dtype=float))
         return self.actuator.basis(self.bodies_for(len(xy)), self.medium, xy)
-
-
-def _as_basis_at(basis_at, medium=None, bodies=None):
-    if isinstance(basis_at, Actuator):
-        if bodies is None or medium is None:
-            raise ActuatorError("an Actuator needs bodies and a medium; pass basis_function(actuator, bodies, medium).")
-        return basis_function(basis_at, bodies, medium)
-    if not callable(basis_at):
-        raise ActuatorError(f"basis_at must be callable xy -> FieldBasis, got {type(basis_at).__name__}.")
-    return basis_at
 
 
 def _progress(it, total, progress, desc):
@@ -1184,7 +1180,8 @@ class CountCurve:
         """One line: fractions per N and the largest N steerable in at least half the trials."""
         parts = ", ".join(f"N={n}: {f:.2f}" for n, f in zip(self.counts, self.fraction))
         return (f"steerable fraction ({self.trials} random configurations each, K = {self.size} {self.mode}): "
-                f"{parts}; up to N = {self.max_steerable()} in at least half (counting limit K/2 = {self.counting_limit:g}"
+                f"{parts}; up to N = {self.max_steerable()} in at least half "
+                f"(counting limit K/2 = {self.counting_limit:g}"
                 + (f", field rank / 2 = {self.rank_limit:g})" if self.rank_limit < self.counting_limit else ")"))
 
 
@@ -1595,7 +1592,8 @@ class MirrorReport:
 
     def summary(self):
         return (f"mirror pair {'separable' if self.pair_separable else 'NOT separable'}; body on the line "
-                f"{'can' if self.can_leave_line else 'CANNOT'} leave it (normal speed {self.leave_speed * 1e6:.4g} um/s)"
+                f"{'can' if self.can_leave_line else 'CANNOT'} leave it "
+                f"(normal speed {self.leave_speed * 1e6:.4g} um/s)"
                 + ("".join("\n  - " + o.text for o in self.pair.obstructions)))
 
 

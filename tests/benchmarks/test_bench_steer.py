@@ -95,7 +95,8 @@ def test_bench_steerability_vs_naive_directions():
 def test_bench_body_speeds_vectorised_vs_per_point():
     rng = np.random.default_rng(2)
     print()
-    print(f"single-body speed per grid point: body_speeds (vectorised) vs steerability() per point, median of {REPEATS}")
+    print("single-body speed per grid point: body_speeds (vectorised) vs steerability() per point, "
+          f"median of {REPEATS}")
     head = f"{'mode':<9} {'K':>3} {'points':>6} | {'vectorised us/pt':>16} | {'per point us/pt':>15} {'x faster':>8}"
     print(head)
     print("-" * len(head))
