@@ -9,7 +9,9 @@ under each input setting and plans with *that*:
    smoothing chosen by cross-validation holding out whole tracks) and reports the
    cross-validated error, a per-point standard error and a data-coverage map;
 3. :class:`CalibratedActuator` is an actuator backed by those fields (timeshare planning over the
-   calibrated primitives), saved as a file pair ``<name>.npz`` + ``<name>.json``;
+   calibrated primitives; its field basis carries ``meta["coverage"]``, shape (K, n), so a
+   planner can penalise primitives where they are not backed by data), saved as a file pair
+   ``<name>.npz`` + ``<name>.json``;
 4. :func:`fit_parameters` fits chosen parameters of any actuator to the same samples by nonlinear
    least squares, with Student-t confidence intervals;
 5. :func:`calibrate_command` does 1-3 and writes the report plots (:func:`plot_vectors`,
@@ -739,6 +741,29 @@ class CalibratedActuator(Actuator):
         if not fields:
             raise ActuatorError(f"coverage: no field for primitive {primitive!r} and body {body!r}.")
         return np.min([f.coverage(xy) for f in fields], axis=0)
+
+    def basis(self, bodies, medium, xy):
+        """The timeshare field basis (see :meth:`fieldplan.Actuator.basis`), with coverage attached.
+
+        ``basis.meta["coverage"]`` is an array (K, n) in [0, 1]: the data coverage of primitive
+        ``k``'s field at body ``i``'s position, for that body's kind; ``basis.meta["drift_coverage"]``
+        (n,) is that of the idle field (ones when the idle velocity is zero by assumption). A planner
+        may penalise time on primitive ``k`` in proportion to ``1 - coverage[k, i]``.
+        """
+        basis = super().basis(bodies, medium, xy)
+        xy = self.check_points(xy)
+        cov = np.ones((basis.size, len(xy)))
+        drift_cov = np.ones(len(xy))
+        kinds = [None if self._kinds == [None] else b.name for b in bodies]
+        for kind in dict.fromkeys(kinds):
+            idx = np.flatnonzero([k == kind for k in kinds])
+            for k, p in enumerate(basis.primitives):
+                cov[k, idx] = self.field(p.name, kind).coverage(xy[idx])
+            if self.idle_primitive is not None:
+                drift_cov[idx] = self.field(self.idle_primitive, kind).coverage(xy[idx])
+        basis.meta["coverage"] = cov
+        basis.meta["drift_coverage"] = drift_cov
+        return basis
 
     def uncertainty(self, xy, primitive, body=None):
         """Standard error of each velocity component of ``primitive``'s field at ``xy``, m/s, (n,)."""

@@ -149,8 +149,13 @@ def test_actuator_contract_and_settings(dense_sparse):
     other = fieldplan.Body("cell", radius=5e-6, density=1050.0)
     with pytest.raises(ActuatorError, match="no calibration for body kind 'cell'.*\\['bead'\\]"):
         act.velocity(other, WATER, [[3e-4, 4e-4]], [1, 0, 0, 0])
-    basis = act.basis([BEAD, BEAD], WATER, [[3e-4, 4e-4], [4e-4, 3e-4]])
+    pos = np.array([[3e-4, 4e-4], [8e-4, 5e-4]])            # dense side, sparse side
+    basis = act.basis([BEAD, BEAD], WATER, pos)
     assert basis.mode == "timeshare" and basis.size == 2
+    cov = basis.meta["coverage"]
+    assert cov.shape == (2, 2) and np.all(cov[:, 0] > cov[:, 1])
+    np.testing.assert_allclose(cov[1], act.coverage(pos, "p4", BEAD))
+    np.testing.assert_array_equal(basis.meta["drift_coverage"], 1.0)      # idle velocity is zero by assumption
 
 
 def test_primitive_only_data_and_idle_field(tmp_path):
