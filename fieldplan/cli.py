@@ -211,7 +211,11 @@ def _cmd_run(args):
     if sc.mode == "open_loop" and schedule is None:
         _say(args, f"planning {sc.name}: {len(sc.bodies)} bodies, {type(sc.actuator).__name__} with "
                    f"{len(sc.actuator.channels)} channels ...")
-    run = run_scenario(sc, schedule=schedule, trials=args.trials, seed=args.seed, progress=_show_progress(args))
+    try:
+        run = run_scenario(sc, schedule=schedule, trials=args.trials, seed=args.seed, progress=_show_progress(args))
+    except LimitError as exc:
+        what = "the given schedule" if schedule is not None else "the planned schedule"
+        raise _UserError(f"refusing to export {what}: {exc} Nothing was written.") from None
     outputs = sc.outputs
     if args.no_plots:
         import dataclasses  # noqa: PLC0415
@@ -220,7 +224,7 @@ def _cmd_run(args):
     try:
         files = write_outputs(out, run, force=args.force, outputs=outputs)
     except LimitError as exc:
-        raise _UserError(f"refusing to export the schedule: {exc}") from None
+        raise _UserError(f"refusing to export the schedule: {exc} Nothing was written.") from None
     agg = run.aggregate()
     _say(args, f"{sc.name}: {run.message} ({time.perf_counter() - t0:.1f} s)")
     if run.trials:

@@ -125,10 +125,18 @@ class RunResult:
             out["min_separation"] = float(np.min([x.metrics.get("min_separation", np.inf) for x in t]))
             out["contacts"] = float(np.mean([x.metrics.get("contacts", 0) for x in t]))
             out["wall_contacts"] = float(np.mean([x.metrics.get("wall_contacts", 0) for x in t]))
-            out["input_energy"] = float(np.mean([sum(x.metrics.get("input_energy", {}).values()) for x in t]))
+            keep = self._energy_channels()
+            out["input_energy"] = float(np.mean([sum(v for k, v in x.metrics.get("input_energy", {}).items()
+                                                     if k in keep) for x in t]))
         elif self.schedule is not None:
-            out["input_energy"] = float(np.sum(self.schedule.energy()))
+            keep = self._energy_channels()
+            out["input_energy"] = float(sum(e for c, e in zip(self.schedule.channels, self.schedule.energy())
+                                            if c.name in keep))
         return out
+
+    def _energy_channels(self):
+        """Channels whose squared value measures effort (not discrete settings such as a frequency)."""
+        return {c.name for c in self.scenario.actuator.channels if not c.values}
 
 
 def _nanmean(x):
@@ -454,8 +462,9 @@ class Comparison:
             lines.append("| " + " | ".join(cells) + " |")
         lines.append("")
         lines.append("Means over runs (± standard deviation); time to goal over successful runs only; "
-                     "input energy is the integral of the squared channel values summed over channels, in the "
-                     "channels' own units (compare it only between variants with the same channel units); "
+                     "input energy is the integral of the squared channel values summed over the continuous channels "
+                     "(discrete settings such as a drive frequency are left out), in the channels' own units "
+                     "(compare it only between variants with the same channel units); "
                      "worst-direction speed of all bodies together at their starts (fieldplan.steer).")
         return "\n".join(lines)
 
@@ -584,7 +593,7 @@ def compare(scenarios, *, seeds=(0,), trials=1, executor=None, progress=False):
         ok = [r for r in runs if "error" not in r]
         row = {"label": s.name, "actuator": type(s.actuator).__name__, "runs": len(runs),
                "errors": len(runs) - len(ok), "error_messages": [r["error"] for r in runs if "error" in r]}
-        units = sorted({c.unit for c in s.actuator.channels})
+        units = sorted({c.unit for c in s.actuator.channels if not c.values})
         if len(units) != 1:
             row["energy_unit"] = "mixed units"
         else:

@@ -1094,6 +1094,12 @@ def _nested_class(cls, typ):
 def _param_value(ctx, path, value, cls, info):
     """One constructor argument from scenario data: unit strings to SI, nested objects built."""
     _, unit, typ = info if info is not None else (None, None, "")
+    pair = re.search(r"sequence of \((\w+), float\)", typ or "")
+    if pair and isinstance(cls, type) and isinstance(value, list) and value and \
+            all(isinstance(v, dict) and len(v) == 2 for v in value):
+        klass, _ = _nested_class(cls, pair.group(1))
+        if klass is not None:
+            return _pairs(ctx, path, value, klass)
     nested, many = _nested_class(cls, typ) if isinstance(cls, type) else (None, None)
     if nested is not None:
         fields = _param_info(nested)
@@ -1116,6 +1122,25 @@ def _param_value(ctx, path, value, cls, info):
     return _si_params(ctx, path, value, unit)
 
 
+def _pairs(ctx, path, value, klass):
+    """``[{coil: {...}, current: 1 A}, ...]`` -> ``[(Coil(...), 1.0), ...]`` (an object and its number)."""
+    fields = _param_info(klass)
+    out = []
+    for i, item in enumerate(value):
+        objs = [k for k, v in item.items() if isinstance(v, dict)]
+        nums = [k for k, v in item.items() if not isinstance(v, dict)]
+        if len(objs) != 1 or len(nums) != 1:
+            out.append(ctx.err(path + (i,), f"expected {{{klass.__name__.lower()}: {{...}}, <value>: <number>}}, "
+                                            f"found keys {sorted(item)}."))
+            continue
+        obj = _build_object(ctx, path + (i, objs[0]), klass, item[objs[0]], fields)
+        num = _si_params(ctx, path + (i, nums[0]), item[nums[0]])
+        if isinstance(num, str) or isinstance(num, bool) or not isinstance(num, (int, float)):
+            num = ctx.err(path + (i, nums[0]), f"expected a number, found {_type_name(item[nums[0]])}.")
+        out.append(BAD if obj is BAD or num is BAD else (obj, float(num)))
+    return BAD if any(x is BAD for x in out) else out
+
+
 def _build_object(ctx, path, cls, spec, fields):
     """``cls(**spec)`` with unit conversion, every problem reported at its key."""
     n0 = len(ctx.problems)
@@ -1131,6 +1156,20 @@ def _build_object(ctx, path, cls, spec, fields):
         msg = f"{exc}" if isinstance(exc, (FieldplanError, ValueError)) else f"{type(exc).__name__}: {exc}"
         key = next((k for k in sorted(spec, key=len, reverse=True) if re.search(rf"\b{re.escape(k)}\b", msg)), None)
         return ctx.err(path + ((key,) if key else ()), f"cannot build {cls.__name__}: {msg}")
+
+
+def _is_path_param(name, info):
+    typ = (info[2] if info else "") or ""
+    return (name in ("path", "file", "filename", "directory") or name.endswith(("_path", "_file", "_dir"))
+            or "PathLike" in typ)
+
+
+def _resolve_path(scenario_file, value):
+    """A relative path in a scenario: against the scenario file's folder if it exists there, else as given."""
+    if os.path.isabs(value) or scenario_file is None or scenario_file.startswith("<"):
+        return value
+    cand = os.path.join(os.path.dirname(os.path.abspath(scenario_file)), value)
+    return cand if os.path.exists(cand) or os.path.exists(cand + ".json") else value
 
 
 def _registry_name(cls):
@@ -1186,6 +1225,9 @@ def _actuator(ctx, path, spec, base=None):
     kw = {k: _param_value(ctx, kp, v, cls, info.get(k)) for k, (v, kp) in params.items()}
     if len(ctx.problems) > n_before:
         return BAD, None
+    for k, v in kw.items():
+        if _is_path_param(k, info.get(k)) and isinstance(v, str):
+            kw[k] = _resolve_path(ctx.doc.file, v)
     try:
         act = factory(kw) if factory is not None else cls(**kw)
     except Exception as exc:  # noqa: BLE001 - any failure of a plug-in's constructor is the user's input
