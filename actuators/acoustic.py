@@ -236,8 +236,11 @@ def tone_set(resonances, band, n_tones=64):
         raise ActuatorError(f"tone_set band must satisfy 0 < low < high (Hz), got {band!r}.")
     if not (isinstance(n_tones, (int, np.integer)) and n_tones >= 1):
         raise ActuatorError(f"tone_set n_tones must be a positive integer, got {n_tones!r}.")
-    res = np.unique(np.asarray(resonances, dtype=float))
+    res = np.sort(np.asarray(resonances, dtype=float).ravel())
     res = res[(res >= lo) & (res <= hi)]
+    # Degenerate modes (a square's pairs) share one tone.
+    if len(res):
+        res = res[np.concatenate([[True], np.diff(res) > 1e-6 * res[1:]])]
     if len(res) >= n_tones:
         pick = np.unique(np.round(np.linspace(0, len(res) - 1, n_tones)).astype(int))
         return res[pick]

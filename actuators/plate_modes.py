@@ -893,7 +893,8 @@ def _ritz(ax, ay, params, n_modes):
     stiff = 0.5 * (stiff + stiff.T)
     mass = 0.5 * (mass + mass.T)
     if n_modes > stiff.shape[0]:
-        raise ActuatorError(f"internal: Ritz space of {stiff.shape[0]} functions cannot give {n_modes} modes.")
+        raise ActuatorError(f"plate_modes: the Ritz space at degree {ax.degree} has {stiff.shape[0]} functions "
+                            f"and cannot give n_modes={n_modes}; raise the degree or ask for fewer modes.")
     # The bisection/inverse-iteration driver is several times faster than the default when only
     # the lowest part of the spectrum is wanted.
     driver = "gvx" if n_modes < stiff.shape[0] // 3 else None
@@ -964,7 +965,7 @@ def _weyl_count(a, b, rho_h, d, omega):
 
 def plate_modes(length_x, length_y, thickness, youngs_modulus, poisson_ratio, density, edges="free",
                 supports=(), n_modes=None, *, max_frequency=None, center=(0.0, 0.0), tol=None,
-                max_degree=44, method="auto"):
+                max_degree=44, method="auto", degree=None):
     """Bending modes of a thin rectangular plate (Kirchhoff theory) by Rayleigh-Ritz.
 
     The Ritz space is a tensor product of Legendre polynomials of degree N in x and in y, each
@@ -1012,6 +1013,9 @@ def plate_modes(length_x, length_y, thickness, youngs_modulus, poisson_ratio, de
     method : {"auto", "ritz", "exact"}
         ``"exact"`` (sine modes) needs all edges simply supported and no point supports; ``"auto"``
         uses it whenever it applies.
+    degree : int, optional
+        Fix the polynomial degree per axis (one Ritz solve, no convergence loop; ``achieved`` is
+        then NaN and ``converged`` False). For convergence studies.
 
     Returns
     -------
@@ -1082,8 +1086,14 @@ def plate_modes(length_x, length_y, thickness, youngs_modulus, poisson_ratio, de
 
     n_constraints = sum(1 if s[2] == "pinned" else 3 for s in supports)  # effective, for sizing
     n_rigid = _rigid_count(edges, supports, extent)
-    # Start where the Ritz space comfortably holds the modes asked for.
-    degree = max(10, int(np.ceil(np.sqrt(2.5 * n_modes + n_constraints))) + 6)
+    fixed = degree is not None
+    if fixed:
+        if not (isinstance(degree, (int, np.integer)) and 2 <= degree <= 80):
+            raise ActuatorError(f"plate_modes degree must be an integer in [2, 80], got {degree!r}.")
+        degree = int(degree)
+    else:
+        # Start where the Ritz space comfortably holds the modes asked for.
+        degree = max(10, int(np.ceil(np.sqrt(2.5 * n_modes + n_constraints))) + 6)
     changes = []
     prev = None
     achieved = np.inf
@@ -1099,12 +1109,14 @@ def plate_modes(length_x, length_y, thickness, youngs_modulus, poisson_ratio, de
             achieved = _error_estimate(changes)
             if achieved <= tol:
                 break
-        if degree + 4 > max_degree:
+        if fixed or degree + 4 > max_degree:
             break
         prev = omega
         degree += 4
+    if fixed:
+        achieved = float("nan")
     converged = achieved <= tol
-    if not converged:
+    if not converged and not fixed:
         warnings.warn(
             f"plate_modes: {n_modes} modes not converged to tol={tol:g} at polynomial degree {degree} "
             f"(estimated relative error {achieved:.2g}); raise max_degree, loosen tol or ask for fewer modes.",

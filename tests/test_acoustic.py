@@ -1,0 +1,605 @@
+"""Vibrating plate: plate modes against published and independent solutions, forced response,
+drift law, tones, the disk cache and the actuator contract.
+
+Sources are named beside each check (see shared CHECKS.md):
+Leissa = A. W. Leissa, Vibration of Plates, NASA SP-160 (1969).
+"""
+
+import os
+import pickle
+
+import matplotlib
+import numpy as np
+import pytest
+from scipy.constants import g as GRAVITY
+from scipy.optimize import brentq
+
+import fieldplan
+from actuators import acoustic
+from actuators.acoustic import (DEFAULT_MOBILITY, Plate, drift_law, hop_gate, hop_threshold,
+                                plot_drift, plot_modes, plot_response, tone_set)
+from actuators.plate_modes import flexural_rigidity, parse_edges, plate_modes
+from fieldplan import ActuatorError, Body, FieldplanError
+from fieldplan.testing import check_actuator
+
+AL = dict(youngs_modulus=69e9, poisson_ratio=0.3, density=2700.0)
+A = 0.2          # m, side of the square plates
+H = 1e-3         # m
+SAND = Body("sand", radius=2.5e-4, density=2600.0)
+BALL = Body("steel-ball", radius=1e-3, density=7800.0, drift_mobility=10.0)
+AIR = fieldplan.air()
+WATER = fieldplan.water()
+
+
+def modes(edges, n, a=A, b=A, supports=(), **kw):
+    return plate_modes(a, b, H, AL["youngs_modulus"], AL["poisson_ratio"], AL["density"], edges,
+                       supports, n, **kw)
+
+
+def lam2_scale(a=A):
+    """omega -> lambda^2 = omega a^2 sqrt(rho h / D)."""
+    d = flexural_rigidity(H, AL["youngs_modulus"], AL["poisson_ratio"])
+    return a**2 * np.sqrt(AL["density"] * H / d)
+
+
+# ------------------------------------------------------------------------------------------
+# plate modes
+# ------------------------------------------------------------------------------------------
+def test_simply_supported_exact_frequencies_and_shapes():
+    """Leissa [pub]: omega_mn = pi^2 [(m/a)^2 + (n/b)^2] sqrt(D / rho h), shape sin sin;
+    square lambda^2(1,1) = 2 pi^2, (1,2) = 5 pi^2, (2,2) = 8 pi^2."""
+    sq = modes("SSSS", 4)
+    assert sq.method == "exact"
+    np.testing.assert_allclose(sq.lambda2, np.pi**2 * np.array([2, 5, 5, 8]), rtol=1e-12)
+    a, b = 0.3, 0.2
+    rect = modes("simply_supported", 6, a=a, b=b)
+    d = flexural_rigidity(H, AL["youngs_modulus"], AL["poisson_ratio"])
+    mn = [(m, n) for m in range(1, 8) for n in range(1, 8)]
+    want = sorted(np.pi**2 * ((m / a) ** 2 + (n / b) ** 2) * np.sqrt(d / (AL["density"] * H)) for m, n in mn)[:6]
+    np.testing.assert_allclose(rect.omega, want, rtol=1e-12)
+    # Shape of mode (1,1) and of (2,1), the second mode of this rectangle, mass-normalised.
+    rng = np.random.default_rng(1)
+    xy = rng.uniform([-a / 2, -b / 2], [a / 2, b / 2], (50, 2))
+    u, v = xy[:, 0] + a / 2, xy[:, 1] + b / 2
+    amp = 2.0 / np.sqrt(AL["density"] * H * a * b)
+    for k, (m, n) in enumerate([(1, 1), (2, 1)]):
+        exact = amp * np.sin(m * np.pi * u / a) * np.sin(n * np.pi * v / b)
+        np.testing.assert_allclose(rect.shape(xy)[:, k], exact, rtol=1e-10, atol=1e-12 * amp)
+
+
+def test_ritz_reproduces_the_exact_simply_supported_modes():
+    """Leissa [pub] exact SS frequencies; the Ritz path (method='ritz') must find them too."""
+    a, b = 0.3, 0.2
+    exact = modes("SSSS", 8, a=a, b=b)
+    ritz = modes("SSSS", 8, a=a, b=b, method="ritz", tol=1e-8)
+    assert ritz.method == "ritz"
+    np.testing.assert_allclose(ritz.omega, exact.omega, rtol=1e-8)
+    xy = np.random.default_rng(2).uniform([-a / 2, -b / 2], [a / 2, b / 2], (40, 2))
+    for k in range(4):  # non-degenerate modes of this rectangle: equal up to the sign convention
+        e, r = exact.shape(xy)[:, k], ritz.shape(xy)[:, k]
+        sign = np.sign(e @ r)
+        np.testing.assert_allclose(sign * r, e, atol=1e-6 * np.max(np.abs(e)))
+
+
+def test_square_free_plate_published_frequencies():
+    """CHECKS.md, square all free, nu = 0.3 [pub, converged values; Leissa 1969 gives 13.468]:
+    three rigid-body zeros, then 13.468, 19.596, 24.270, 34.801 (x2), 61.093 (x2), 63.686."""
+    m = modes("free", 11)
+    assert m.n_rigid == 3 and np.all(m.lambda2[:3] == 0)
+    want = [13.468, 19.596, 24.270, 34.801, 34.801, 61.093, 61.093, 63.686]
+    np.testing.assert_allclose(m.lambda2[3:], want, rtol=1e-3)
+    assert m.converged and m.achieved <= 1e-4
+
+
+def test_square_cantilever_plate():
+    """Square plate clamped on one edge, nu = 0.3 (from memory: converged Ritz values 3.4711,
+    8.5066, 21.285, 27.199; Leissa 1969 tabulates older, slightly higher approximations)."""
+    m = modes("CFFF", 4)
+    np.testing.assert_allclose(m.lambda2, [3.4711, 8.5066, 21.285, 27.199], rtol=1e-3)
+
+
+def test_square_clamped_plate_fundamental():
+    """Leissa 1969 [pub]: square, all edges clamped, lambda_1^2 = 35.985 (converged)."""
+    m = modes("clamped", 3)
+    assert m.n_rigid == 0
+    np.testing.assert_allclose(m.lambda2[0], 35.985, rtol=1e-3)
+
+
+def test_ritz_frequencies_fall_monotonically_as_the_basis_grows():
+    """Rayleigh-Ritz [pub, e.g. Leissa 1969 ch. 1]: nested trial spaces give upper bounds that
+    decrease monotonically to the eigenvalue. Clamped square -> 35.985 (Leissa 1969)."""
+    lam = [modes("CCCC", 1, degree=d).lambda2[0] for d in (4, 5, 6, 8, 10, 12)]
+    assert np.all(np.diff(lam) <= 1e-9 * lam[0]), lam
+    assert lam[0] > lam[-1] * (1 + 3e-4)        # the one-term basis (x^2-1)^2(y^2-1)^2 is off ...
+    np.testing.assert_allclose(lam[-1], 35.985, rtol=1e-4)   # ... the fine one converged
+    # The same with a pinned support (singular enrichment): fast monotone convergence.
+    pin = [modes("free", 4, supports=[(0.0, 0.0)], degree=d).lambda2[2] for d in (4, 6, 8, 12)]
+    assert np.all(np.diff(pin) <= 1e-9 * pin[0]), pin
+    ref = modes("free", 4, supports=[(0.0, 0.0)], tol=1e-7).lambda2[2]
+    assert abs(pin[-1] / ref - 1) < 1e-5
+
+
+def test_stated_tolerance_is_met():
+    """The estimated error is honest: a much finer basis moves the frequencies by less than tol
+    (common practice, no source: a convergence study)."""
+    tol = 1e-6
+    m = modes("SCFC", 12, a=0.25, tol=tol)   # rectangle with mixed edges, no clamped-free corner
+    fine = modes("SCFC", 12, a=0.25, degree=m.degree + 12)
+    assert m.converged and m.achieved <= tol
+    assert np.max(np.abs(m.omega / fine.omega - 1)) < tol
+
+
+def _gauss_grid(x0, x1, y0, y1, n):
+    t, w = np.polynomial.legendre.leggauss(n)
+    x = x0 + (t + 1) * (x1 - x0) / 2
+    y = y0 + (t + 1) * (y1 - y0) / 2
+    X, Y = np.meshgrid(x, y, indexing="ij")
+    W = np.outer(w * (x1 - x0) / 2, w * (y1 - y0) / 2)
+    return np.column_stack([X.ravel(), Y.ravel()]), W.ravel()
+
+
+@pytest.mark.parametrize("case", ["free", "SCSC", "pinned", "exact"])
+def test_modes_are_mass_orthonormal(case):
+    """Definition of mass normalisation: integral(rho h phi_m phi_n) dA = delta_mn, checked by an
+    independent Gauss quadrature of shape() over the plate (split at the centre, where a pin
+    puts its r^2 ln r singularity; derived)."""
+    a, b = (0.3, 0.2) if case == "SCSC" else (A, A)
+    m = {"free": lambda: modes("free", 12),
+         "SCSC": lambda: modes("SCSC", 12, a=a, b=b),
+         "pinned": lambda: modes("free", 12, supports=[(0.0, 0.0)]),
+         "exact": lambda: modes("SSSS", 12)}[case]()
+    pts, wts = [], []
+    for x0, x1 in ((-a / 2, 0), (0, a / 2)):
+        for y0, y1 in ((-b / 2, 0), (0, b / 2)):
+            p, w = _gauss_grid(x0, x1, y0, y1, 40)
+            pts.append(p)
+            wts.append(w)
+    phi = m.shape(np.vstack(pts))
+    gram = AL["density"] * H * (phi * np.concatenate(wts)[:, None]).T @ phi
+    np.testing.assert_allclose(gram, np.eye(m.n_modes), atol=2e-7)
+
+
+def _levy_lambda2(a, b, y_edges, count, m_max=6):
+    """Independent method: Levy's closed form for a plate simply supported on x = 0, a.
+
+    w = sin(m pi x / a) Y(y); Y'''' - 2 alpha^2 Y'' + (alpha^4 - k^4) Y = 0 with alpha = m pi / a
+    and k^4 = rho h omega^2 / D (Leissa 1969, ch. 4). For clamped or simply supported y-edges
+    k > alpha, so Y = c1 e^{b1 (y - b)} + c2 e^{-b1 y} + c3 cos(b2 y) + c4 sin(b2 y) with
+    b1 = sqrt(k^2 + alpha^2), b2 = sqrt(k^2 - alpha^2). The boundary rows (clamped: Y = Y' = 0;
+    simply supported: Y = Y'' = 0, since Y'' - nu alpha^2 Y = 0 with Y = 0) give a 4 x 4
+    determinant whose roots in k are found with brentq. Returns lambda^2 = k^2 a^2 (with side a).
+    """
+    def rows(y, code, k, alpha):
+        b1, b2 = np.sqrt(k * k + alpha * alpha), np.sqrt(k * k - alpha * alpha)
+        e1, e2 = np.exp(b1 * (y - b)), np.exp(-b1 * y)
+        c, s = np.cos(b2 * y), np.sin(b2 * y)
+        val = [e1, e2, c, s]
+        d1 = [b1 * e1, -b1 * e2, -b2 * s, b2 * c]
+        d2 = [b1 * b1 * e1, b1 * b1 * e2, -b2 * b2 * c, -b2 * b2 * s]
+        return [val, d1] if code == "C" else [val, d2]
+
+    def det(k, alpha):
+        mat = np.array(rows(0.0, y_edges[0], k, alpha) + rows(b, y_edges[1], k, alpha))
+        return np.linalg.det(mat / np.max(np.abs(mat), axis=1, keepdims=True))
+
+    out = []
+    for m in range(1, m_max + 1):
+        alpha = m * np.pi / a
+        ks = np.linspace(alpha * (1 + 1e-6), alpha + 12 * np.pi / b, 6000)
+        vals = np.array([det(k, alpha) for k in ks])
+        for i in np.flatnonzero(np.sign(vals[:-1]) * np.sign(vals[1:]) < 0):
+            out.append(brentq(det, ks[i], ks[i + 1], args=(alpha,), xtol=1e-14) ** 2 * a * a)
+    return np.sort(out)[:count]
+
+
+@pytest.mark.parametrize("edges, a, b", [("SCSC", 0.3, 0.2), ("SSSC", 0.14, 0.2)])
+def test_rectangle_with_mixed_edges_matches_levy_solution(edges, a, b):
+    """Independent method written here: the Levy closed-form characteristic equation solved with
+    brentq (Leissa 1969, ch. 4), for SS-C-SS-C at a/b = 1.5 and SS-SS-SS-C at a/b = 0.7."""
+    codes = parse_edges(edges)
+    ritz = modes(edges, 8, a=a, b=b, tol=1e-7)
+    levy = _levy_lambda2(a, b, (codes[1], codes[3]), 8)
+    np.testing.assert_allclose(ritz.lambda2, levy, rtol=1e-6)
+
+
+def test_pinned_support_matches_receptance_zeros_of_the_free_plate():
+    """Independent method [derived from modal superposition]: a plate pinned at c has its
+    eigenfrequencies at the zeros of the free plate's driving-point receptance
+    sum_m phi_m(c)^2 / (omega_m^2 - omega^2). The truncated sum converges as 1/M; Richardson
+    extrapolation from M = 60 and 120 free modes leaves ~1e-3 (a polynomial-only Ritz basis at
+    degree 10 is 1 % off, so the check separates the two)."""
+    pin = modes("free", 12, supports=[(0.0, 0.0)], tol=1e-7)
+    assert pin.n_rigid == 2                 # a pin leaves the two rocking motions free
+    c = np.zeros((1, 2))
+    zeros = {}
+    for n in (60, 120):
+        free = modes("free", n)
+        phi, om = free.shape(c)[0], free.omega
+        rig = om == 0
+        r0 = np.sum(phi[rig] ** 2)
+        keep = ~rig & (np.abs(phi) > 1e-6 * np.max(np.abs(phi)))
+        ph, po = phi[keep], om[keep]
+
+        def receptance(w):
+            return -r0 / w**2 + np.sum(ph**2 / (po**2 - w**2))
+
+        edges = np.concatenate([[po[0] * 1e-3], po[:2]])
+        zeros[n] = np.array([brentq(receptance, lo * (1 + 1e-9), hi * (1 - 1e-9))
+                             for lo, hi in zip(edges[:-1], edges[1:])])
+    want = (2 * zeros[120] - zeros[60]) * lam2_scale()
+    # The two lowest modes the pin changes (those not vanishing at c) are the nearest ones.
+    got = [pin.lambda2[np.argmin(np.abs(pin.lambda2 - w))] for w in want]
+    np.testing.assert_allclose(got, want, rtol=3e-3)
+
+
+def test_participation_of_simply_supported_modes():
+    """Derived from the exact SS modes (Leissa 1969): Gamma_11 = integral(rho h phi_11) dA
+    = 8 sqrt(rho h a b) / pi^2; modes with an even index have Gamma = 0."""
+    m = modes("SSSS", 4, a=0.3, b=0.2)
+    gam = m.participation()
+    np.testing.assert_allclose(gam[0], 8 * np.sqrt(AL["density"] * H * 0.3 * 0.2) / np.pi**2, rtol=1e-12)
+    assert abs(gam[1]) < 1e-12 * abs(gam[0])          # mode (2,1)
+
+
+def test_mode_gradients_match_finite_differences():
+    """Derivative check (common practice, no source): gradient() vs central differences."""
+    m = modes("free", 8, supports=[(0.03, -0.02)])
+    xy = np.random.default_rng(3).uniform(-0.09, 0.09, (20, 2))
+    h = 1e-6
+    fd = np.stack([(m.shape(xy + [h, 0]) - m.shape(xy - [h, 0])) / (2 * h),
+                   (m.shape(xy + [0, h]) - m.shape(xy - [0, h])) / (2 * h)], axis=-1)
+    np.testing.assert_allclose(m.gradient(xy), fd, rtol=1e-5, atol=1e-6 * np.max(np.abs(fd)))
+
+
+# ------------------------------------------------------------------------------------------
+# forced response
+# ------------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def ss_plate(tmp_path_factory):
+    """Simply supported 0.3 m x 0.2 m plate, force at a generic point, light damping."""
+    return Plate(0.3, 0.2, H, **AL, edges="SSSS", drive_point=(0.037, -0.021), damping=0.002,
+                 band=(50.0, 2000.0), n_tones=8, cache_dir=tmp_path_factory.mktemp("ss"))
+
+
+def test_forced_response_peaks_at_the_modal_frequencies(ss_plate):
+    """Modal superposition with modal damping; a single-degree-of-freedom displacement response
+    peaks at omega_n sqrt(1 - 2 zeta^2) (textbook SDOF result, from memory). Checked for the
+    first four (well separated) modes of the rectangle to 3e-4, well inside the half-power
+    bandwidth 2 zeta = 4e-3."""
+    m = ss_plate.modes
+    probe = np.array([[-0.061, 0.043]])
+    zeta = ss_plate.damping
+    for k in range(4):
+        fn = m.frequencies[k]
+        f = fn * np.linspace(1 - 15 * zeta, 1 + 15 * zeta, 6001)
+        h = np.abs(ss_plate.frequency_response(f, probe)[:, 0])
+        assert 0 < np.argmax(h) < len(f) - 1
+        np.testing.assert_allclose(f[np.argmax(h)], fn * np.sqrt(1 - 2 * zeta**2), rtol=3e-4)
+        # and it is a peak: well above the response a few bandwidths away
+        assert h.max() > 5 * max(h[0], h[-1])
+
+
+def test_forced_response_at_resonance_has_the_mode_shape(ss_plate):
+    """Modal superposition: at omega = omega_n the n-th term is larger than the others by about
+    1 / (2 zeta), so the deflection pattern is that mode's shape (derived)."""
+    m = ss_plate.modes
+    x0, x1, y0, y1 = ss_plate.extent
+    X, Y = np.meshgrid(np.linspace(x0, x1, 41), np.linspace(y0, y1, 31))
+    xy = np.column_stack([X.ravel(), Y.ravel()])
+    phi = m.shape(xy)
+    for k in range(4):
+        w = ss_plate.deflection(m.frequencies[k], 1.0, xy)
+        corr = abs(np.vdot(phi[:, k], w)) / (np.linalg.norm(phi[:, k]) * np.linalg.norm(w))
+        assert corr > 0.999, (k, corr)
+        # and the plate velocity and acceleration follow i omega w and -omega^2 w
+        om = 2 * np.pi * m.frequencies[k]
+        np.testing.assert_allclose(ss_plate.surface_velocity(m.frequencies[k], 1.0, xy[:3]), 1j * om * w[:3])
+        np.testing.assert_allclose(ss_plate.surface_acceleration(m.frequencies[k], 1.0, xy[:3]), -om**2 * w[:3])
+
+
+def test_base_drive_moves_the_plate_with_its_support_at_low_frequency(tmp_path):
+    """Base excitation, derived: w = u_b [1 + omega^2 sum phi Gamma / (omega_m^2 - omega^2 ...)]
+    tends to rigid motion with the support (w -> u_b) far below the first resonance, and the
+    gain is the support displacement per drive unit."""
+    plate = Plate(A, A, H, **AL, edges="CCCC", excitation="base", gain=2e-6, band=(1.0, 500.0),
+                  tones=[(300.0, 1.0)], cache_dir=tmp_path)
+    xy = np.array([[0.0, 0.0], [0.05, 0.03]])
+    w = plate.deflection(1.0, 1.0, xy)
+    first = plate.modes.frequencies[0]
+    assert first > 200
+    np.testing.assert_allclose(w, 2e-6, rtol=3 * (1.0 / first) ** 2 + 1e-9)
+
+
+# ------------------------------------------------------------------------------------------
+# drift law
+# ------------------------------------------------------------------------------------------
+def test_hop_threshold_at_500_hz():
+    """CHECKS.md, bouncing-ball criterion [pub]: a grain hops where omega^2 |w| > g;
+    500 Hz -> threshold amplitude 0.9936 um."""
+    np.testing.assert_allclose(hop_threshold(500.0), 0.9936e-6, rtol=1e-4)
+    np.testing.assert_allclose(hop_threshold(500.0), GRAVITY / (2 * np.pi * 500.0) ** 2, rtol=1e-14)
+
+
+def test_hop_gate_stops_grains_below_threshold_in_air(ss_plate):
+    """Bouncing-ball criterion [pub]: in air nothing moves where the plate's acceleration is
+    below g; under liquid there is no such threshold (Phys. Rev. Lett. 122, 184301, 2019)."""
+    f = ss_plate.modes.frequencies[0]
+    x0, x1, y0, y1 = ss_plate.extent
+    X, Y = np.meshgrid(np.linspace(x0, x1, 25), np.linspace(y0, y1, 17))
+    xy = np.column_stack([X.ravel(), Y.ravel()])
+    peak = np.max(np.abs(ss_plate.frequency_response([f], xy)))
+    for factor, moves in ((0.95, False), (1.5, True)):
+        amp = factor * hop_threshold(f) / peak
+        v_air = ss_plate.drift(SAND, AIR, xy, f, amp)
+        v_water = ss_plate.drift(SAND, WATER, xy, f, amp)
+        assert (np.max(np.abs(v_air)) > 0) == moves
+        assert np.max(np.abs(v_water)) > 0
+    # The gate is a C1 ramp: 0 at Gamma = 1, 1 from 1 + width on.
+    assert hop_gate(1.0) == 0 and hop_gate(1.2) == 1 and 0 < hop_gate(1.1) < 1
+
+
+def test_drift_toward_nodal_line_in_air_and_away_under_liquid(tmp_path):
+    """Faraday, Phil. Trans. 121 (1831) [pub]: in air heavy grains collect on nodal lines;
+    Phys. Rev. Lett. 122, 184301 (2019) [pub]: on a submerged plate heavy beads go to antinodes.
+    Mode (2,1) of a simply supported square has its nodal line on x = 0; a grain 10 mm beside
+    it must move toward it in air and away from it under water. The drive point lies on the
+    mirror line y = 0, so on that line the drift is purely across the nodal line."""
+    m = modes("SSSS", 3)
+    f21 = m.frequencies[1]
+    plate = Plate(A, A, H, **AL, edges="SSSS", drive_point=(-A / 4, 0.0), band=(100.0, 1000.0),
+                  tones=[(f21, 1.0)], max_amplitude=10.0, cache_dir=tmp_path)
+    peak = np.max(np.abs(plate.deflection(f21, 1.0, [[-A / 4, 0.0]])))
+    amp = 30e-6 / peak              # 30 um at the antinode
+    for side in (+1, -1):
+        xy = np.array([[side * 0.01, 0.0]])
+        assert np.abs(plate.deflection(f21, amp, xy))[0] > 1.3 * hop_threshold(f21)  # grains hop here
+        v_air = plate.drift(SAND, AIR, xy, f21, amp)[0]
+        v_wet = plate.drift(SAND, WATER, xy, f21, amp)[0]
+        assert np.sign(v_air[0]) == -side and np.sign(v_wet[0]) == side
+        assert abs(v_air[1]) < 1e-6 * abs(v_air[0])
+
+
+def test_drift_law_units_and_mobility():
+    """The law's definition (module docstring): v = s mu omega G grad|w|^2; linear in mu.
+    Default mu gives mm/s to cm/s for 20 um at 1 kHz (PHYSICS-NOTES ranges, from memory)."""
+    grad = np.array([[2.5e-8, 0.0]])              # ~ |w|^2 k for |w| = 20 um, k = 64 rad/m
+    omega = 2 * np.pi * 1000.0
+    v = drift_law(omega, np.array([(20e-6) ** 2]), grad, DEFAULT_MOBILITY, submerged=False)
+    np.testing.assert_allclose(v[0, 0], -DEFAULT_MOBILITY * omega * grad[0, 0])
+    assert 1e-3 < abs(v[0, 0]) < 1e-1
+    v2 = drift_law(omega, np.array([(20e-6) ** 2]), grad, 2 * DEFAULT_MOBILITY, submerged=True)
+    np.testing.assert_allclose(v2, -2 * v)
+
+
+# ------------------------------------------------------------------------------------------
+# the actuator
+# ------------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def centre_plate(tmp_path_factory):
+    """Square aluminium plate pinned at its centre on a post that a shaker moves (base drive)."""
+    return Plate(A, A, H, **AL, edges="free", supports=[(0.0, 0.0)], excitation="base",
+                 band=(150.0, 1200.0), n_tones=16, cache_dir=tmp_path_factory.mktemp("centre"))
+
+
+@pytest.fixture(scope="module")
+def offset_plate(tmp_path_factory):
+    """The same plate driven by a point force off every symmetry line."""
+    return Plate(A, A, H, **AL, edges="free", drive_point=(0.031, 0.047), band=(150.0, 1200.0),
+                 n_tones=16, cache_dir=tmp_path_factory.mktemp("offset"))
+
+
+def test_contract_suite_passes(centre_plate, offset_plate):
+    """fieldplan.testing.check_actuator: the actuator contract."""
+    for plate in (centre_plate, offset_plate):
+        check_actuator(plate, [SAND, BALL], AIR)
+        check_actuator(plate, [SAND], WATER)
+    assert {"discrete_channels", "zero_idle"} <= centre_plate.tags
+    assert "affine_in_input" not in centre_plate.tags
+
+
+def test_channels_and_tones(centre_plate):
+    """Frequency channel lists the tones; every excitable resonance in the band is a tone;
+    generated amplitudes reach the target peak displacement unless capped."""
+    freq, amp = centre_plate.channels
+    assert freq.unit == "Hz" and freq.values and amp.unit == "V" and amp.lower == 0
+    res = centre_plate.resonances()
+    assert 0 < len(res) < centre_plate.n_tones
+    for f in res:
+        assert np.any(np.isclose(freq.values, f, rtol=1e-12))
+    for row in centre_plate.tone_table():
+        assert row["peak_displacement"] <= 20e-6 * (1 + 1e-9)
+        assert np.isclose(row["peak_displacement"], 20e-6) or np.isclose(row["amplitude"], centre_plate.max_amplitude)
+    assert len(centre_plate.primitives()) == centre_plate.n_tones
+
+
+def test_tone_set_places_resonances_and_midpoints():
+    """Tones at each resonance and at geometric midpoints of the widest gaps (definition)."""
+    t = tone_set([300.0, 700.0, 5000.0], (100.0, 2000.0), 6)
+    assert len(t) == 6 and np.all((t >= 100) & (t <= 2000)) and np.all(np.diff(t) > 0)
+    assert 300.0 in t and 700.0 in t and 5000.0 not in t
+    assert np.any(np.isclose(t, np.sqrt(700.0 * 2000.0)))
+    many = tone_set(np.linspace(200, 900, 30), (100.0, 1000.0), 5)
+    assert len(many) == 5 and np.all(np.isin(many, np.linspace(200, 900, 30)))
+
+
+def test_grid_interpolation_matches_direct_modal_evaluation(centre_plate, tmp_path):
+    """The cached grid (Keys cubic convolution) against direct modal evaluation: the basis
+    fields agree to 1 % of the largest (common practice, no source: interpolation error)."""
+    direct = Plate(A, A, H, **AL, edges="free", supports=[(0.0, 0.0)], excitation="base",
+                   band=(150.0, 1200.0), n_tones=16, cache_dir=tmp_path, use_grid=False)
+    xy = np.random.default_rng(5).uniform(-0.095, 0.095, (30, 2))
+    bodies = [SAND, BALL] * 15
+    for medium in (AIR, WATER):
+        fg = centre_plate.basis(bodies, medium, xy).fields
+        fd = direct.basis(bodies, medium, xy).fields
+        assert np.max(np.abs(fg - fd)) < 1e-2 * np.max(np.abs(fd))
+
+
+def test_basis_agrees_with_velocity_for_each_tone(offset_plate):
+    """The fast basis override equals velocity(primitive) per body (contract, definition)."""
+    xy = np.random.default_rng(6).uniform(-0.09, 0.09, (5, 2))
+    bodies = [SAND, BALL, SAND, BALL, SAND]
+    b = offset_plate.basis(bodies, AIR, xy)
+    for k, p in enumerate(offset_plate.primitives()):
+        for i, body in enumerate(bodies):
+            np.testing.assert_allclose(b.fields[k, i], offset_plate.velocity(body, AIR, xy[i:i + 1], p.values)[0],
+                                       rtol=1e-12, atol=1e-18)
+
+
+def test_body_mobility_scales_the_drift(offset_plate):
+    """Definition: v is linear in mu; Body.drift_mobility overrides the plate default."""
+    xy = np.array([[0.02, -0.03], [-0.05, 0.01]])
+    u = offset_plate.primitives()[3].values
+    v_default = offset_plate.velocity(SAND, AIR, xy, u)
+    custom = Body("sand", radius=2.5e-4, density=2600.0, drift_mobility=3 * DEFAULT_MOBILITY)
+    np.testing.assert_allclose(offset_plate.velocity(custom, AIR, xy, u), 3 * v_default)
+
+
+def test_centre_drive_has_mirror_symmetric_fields(centre_plate, offset_plate):
+    """PHYSICS-NOTES, symmetry: a square plate driven at its centre excites only modes symmetric
+    about it, so fields are mirror images at mirror points; an off-centre drive breaks this."""
+    m = centre_plate.modes
+    x0, x1, y0, y1 = centre_plate.extent
+    pts = np.random.default_rng(7).uniform(x0, x1, (15, 2))
+    for k in centre_plate.excitable_modes():
+        phi = m.shape(pts, [k])[:, 0]
+        scale = np.max(np.abs(phi))
+        for mirror in (pts * [-1, 1], pts * [1, -1], pts[:, ::-1]):
+            np.testing.assert_allclose(m.shape(mirror, [k])[:, 0], phi, atol=1e-6 * scale)
+    elastic = np.count_nonzero(m.omega > 0)
+    assert len(centre_plate.excitable_modes()) < elastic / 3
+
+    def asymmetry(plate):
+        p = pts[:6]
+        n = len(p)
+        f = plate.basis([SAND] * 4 * n, AIR, np.vstack([p, p * [-1, 1], p * [1, -1], p[:, ::-1]])).fields
+        v, vx, vy, vd = f[:, :n], f[:, n:2 * n], f[:, 2 * n:3 * n], f[:, 3 * n:]
+        err = [np.abs(vx - v * [-1, 1]), np.abs(vy - v * [1, -1]), np.abs(vd - v[..., ::-1])]
+        return max(e.max() for e in err) / np.max(np.abs(f))
+
+    assert asymmetry(centre_plate) < 1e-5
+    assert asymmetry(offset_plate) > 1e-2
+
+
+def test_speeds_in_the_expected_range(centre_plate):
+    """PHYSICS-NOTES ranges (from memory): grains on a demonstration plate move at mm/s to cm/s;
+    with the default mobility the fastest points of each tone are in 0.1 mm/s .. 10 cm/s."""
+    x0, x1, y0, y1 = centre_plate.extent
+    X, Y = np.meshgrid(np.linspace(x0, x1, 31), np.linspace(y0, y1, 31))
+    xy = np.column_stack([X.ravel(), Y.ravel()])
+    f = centre_plate.basis([SAND] * len(xy), AIR, xy).fields
+    top = np.max(np.hypot(f[..., 0], f[..., 1]), axis=1)
+    assert np.median(top) > 1e-4 and np.max(top) < 0.1
+
+
+# ------------------------------------------------------------------------------------------
+# disk cache
+# ------------------------------------------------------------------------------------------
+def test_cache_reload_does_not_recompute(tmp_path, monkeypatch):
+    """A second plate with the same parameters loads modes and grids from disk (written
+    atomically: no temporary files remain); a changed parameter makes a new entry."""
+    kw = dict(**AL, edges="free", drive_point=(0.02, 0.01), band=(150.0, 900.0), n_tones=6, cache_dir=tmp_path)
+    first = Plate(A, A, H, **kw).prepare()
+    names = sorted(os.listdir(tmp_path))
+    assert len(names) == 2 and all(n.endswith(".npz") for n in names)
+    assert not [n for n in names if n.startswith(".")]
+
+    def boom(*a, **k):
+        raise AssertionError("recomputed although cached")
+
+    monkeypatch.setattr(acoustic, "plate_modes", boom)
+    monkeypatch.setattr(Plate, "_build_grid", boom)
+    second = Plate(A, A, H, **kw).prepare()
+    xy = np.array([[0.01, 0.02], [-0.04, 0.03]])
+    np.testing.assert_array_equal(first.basis([SAND, SAND], AIR, xy).fields, second.basis([SAND, SAND], AIR, xy).fields)
+    monkeypatch.undo()
+    Plate(A, A, H, **{**kw, "damping": 0.02}).prepare()
+    assert len(os.listdir(tmp_path)) == 3          # same modes, new grid
+    # A pickled plate travels without its arrays and reloads them.
+    assert len(pickle.dumps(second)) < 20000
+
+
+def test_cache_directory_from_environment(tmp_path, monkeypatch):
+    """FIELDPLAN_CACHE chooses the cache directory when cache_dir is not given."""
+    monkeypatch.setenv("FIELDPLAN_CACHE", str(tmp_path / "env-cache"))
+    assert acoustic.cache_directory() == tmp_path / "env-cache"
+    assert acoustic.cache_directory(tmp_path / "x") == tmp_path / "x"
+    assert acoustic.cache_directory(False) is None
+    Plate(A, A, H, **AL, edges="SSSS", band=(100.0, 600.0), n_tones=3).prepare()
+    assert len(os.listdir(tmp_path / "env-cache")) == 2
+
+
+def test_corrupt_cache_entry_is_recomputed(tmp_path):
+    kw = dict(**AL, edges="SSSS", band=(100.0, 600.0), n_tones=3, cache_dir=tmp_path)
+    Plate(A, A, H, **kw).prepare()
+    for n in os.listdir(tmp_path):
+        (tmp_path / n).write_bytes(b"not a cache file")
+    plate = Plate(A, A, H, **kw).prepare()
+    assert np.all(np.isfinite(plate.basis([SAND], AIR, [[0.01, 0.01]]).fields))
+
+
+# ------------------------------------------------------------------------------------------
+# bad input
+# ------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("kwargs, match", [
+    (dict(thickness=-1e-3), "thickness"),
+    (dict(poisson_ratio=0.5), "poisson_ratio"),
+    (dict(poisson_ratio=0.7), "poisson_ratio"),
+    (dict(tones=[(6000.0, 1.0)]), "outside the declared band"),
+    (dict(tones=[(300.0, 50.0)]), "amplitude"),
+    (dict(edges="XFFF"), "edge"),
+    (dict(supports=[(0.5, 0.0)]), "supports"),
+    (dict(supports=[(0.0, 0.0, "clamped")]), "radius"),
+    (dict(drive_point=(0.3, 0.0)), "drive_point"),
+    (dict(excitation="base"), "supports or a clamped"),
+    (dict(damping=0.0), "damping"),
+    (dict(band=(500.0, 100.0)), "band"),
+    (dict(material="unobtainium"), "material"),
+    (dict(length_x="20 kg"), "length_x: '20 kg' has dimension"),
+])
+def test_bad_plate_parameters_raise_clear_errors(kwargs, match):
+    base = dict(length_x=A, length_y=A, thickness=H, cache_dir=False)
+    # ActuatorError, or UnitError for a value with the wrong unit (both FieldplanError, ValueError)
+    with pytest.raises(FieldplanError, match=match):
+        Plate(**{**base, **kwargs})
+
+
+def test_bad_calls_raise(offset_plate):
+    xy = np.array([[0.0, 0.01]])
+    freq = offset_plate.channels[0]
+    with pytest.raises(ActuatorError, match="outside its bounds"):
+        offset_plate.velocity(SAND, AIR, xy, [6000.0, 1.0])
+    with pytest.raises(ActuatorError, match="not one of its allowed"):
+        offset_plate.velocity(SAND, AIR, xy, [0.5 * (freq.values[0] + freq.values[1]), 1.0])
+    with pytest.raises(ActuatorError, match="outside the declared band"):
+        offset_plate.drift(SAND, AIR, xy, 10.0, 1.0)
+    with pytest.raises(ActuatorError, match="poisson_ratio"):
+        plate_modes(A, A, H, 69e9, 0.5, 2700.0, "free", n_modes=3)
+    with pytest.raises(ActuatorError, match="thickness"):
+        plate_modes(A, A, -H, 69e9, 0.3, 2700.0, "free", n_modes=3)
+
+
+def test_units_as_strings(tmp_path):
+    """Parameters accept unit strings (parsed by fieldplan.units.to_si)."""
+    p = Plate("200 mm", "0.2 m", "1 mm", youngs_modulus="69 GPa", edges="SSSS", band=("100 Hz", "0.6 kHz"),
+              n_tones=3, cache_dir=tmp_path)
+    assert p.length_x == pytest.approx(0.2) and p.band == (pytest.approx(100.0), pytest.approx(600.0))
+    assert p.youngs_modulus == pytest.approx(69e9)
+
+
+# ------------------------------------------------------------------------------------------
+# plots
+# ------------------------------------------------------------------------------------------
+def test_plots_return_labelled_figures(centre_plate, tmp_path):
+    fig = plot_modes(centre_plate.modes, count=4, columns=2)
+    assert isinstance(fig, matplotlib.figure.Figure)
+    labels = [ax.get_xlabel() for ax in fig.axes]
+    assert "x (mm)" in labels and any("peak" in ax.get_ylabel() for ax in fig.axes)  # colour bar
+    fig2 = plot_drift(centre_plate, SAND, AIR, tone=2)
+    assert any("mm/s" in ax.get_ylabel() for ax in fig2.axes) and any("µm" in ax.get_ylabel() for ax in fig2.axes)
+    fig3 = plot_response(centre_plate, [[0.05, 0.03]], n=200)
+    assert "Hz" in fig3.axes[0].get_xlabel()
+    for k, f in enumerate((fig, fig2, fig3)):
+        f.savefig(tmp_path / f"p{k}.png", dpi=50)
+        matplotlib.pyplot.close(f)
+    assert all((tmp_path / f"p{k}.png").stat().st_size > 1000 for k in range(3))
