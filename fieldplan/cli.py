@@ -228,8 +228,10 @@ def _cmd_run(args):
     agg = run.aggregate()
     _say(args, f"{sc.name}: {run.message} ({time.perf_counter() - t0:.1f} s)")
     if run.trials:
+        from .compare import format_si  # noqa: PLC0415
+
         _say(args, f"  success rate {100 * agg['success_rate']:.0f} %, mean final error "
-                   f"{agg['final_error']:.3g} m, min separation {agg['min_separation']:.3g} m")
+                   f"{format_si(agg['final_error'], 'm')}, min separation {format_si(agg['min_separation'], 'm')}")
     if run.schedule is not None:
         _say(args, f"  schedule: {run.schedule.n_segments} segments, {run.schedule.duration:.4g} s, checked "
                    "against the declared limits")

@@ -327,7 +327,7 @@ class InlineExecutor(cf.Executor):
 
 
 @contextlib.contextmanager
-def make_executor(scheduler=None, workers=None):
+def make_executor(scheduler=None, workers=None, timeout=10.0):
     """The executor sweeps run on.
 
     Parameters
@@ -337,6 +337,8 @@ def make_executor(scheduler=None, workers=None):
         ``cluster`` extra (``pip install 'fieldplan[cluster]'``).
     workers : int, optional
         Local worker processes (default: CPU count); ``1`` runs in this process.
+    timeout : float
+        s to wait for the scheduler.
 
     Yields
     ------
@@ -348,8 +350,8 @@ def make_executor(scheduler=None, workers=None):
         except ImportError:
             raise FieldplanError("a scheduler address needs dask.distributed: pip install 'fieldplan[cluster]'.") from None
         try:
-            client = Client(scheduler, timeout="10s")
-        except OSError as exc:
+            client = Client(scheduler, timeout=f"{float(timeout)}s")
+        except (OSError, TimeoutError) as exc:
             raise FieldplanError(f"cannot connect to the dask scheduler at {scheduler!r}: {exc}") from None
         try:
             yield client.get_executor()

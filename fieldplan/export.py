@@ -217,7 +217,8 @@ def _write_plots(folder, run, outputs):
     if outputs.animation and (first is not None or run.predicted_times is not None):
         times, pos = (first.times, first.positions) if first is not None else (run.predicted_times,
                                                                                run.predicted_positions)
-        plots.animate(os.path.join(folder, FILES["animation"]), sc.workspace, sc.bodies, times, pos, run.goals)
+        plots.animate(os.path.join(folder, FILES["animation"]), sc.workspace, sc.bodies, times, pos, run.goals,
+                      frames=outputs.animation_frames)
         written.append(os.path.join(folder, FILES["animation"]))
     return written
 

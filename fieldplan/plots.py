@@ -317,8 +317,12 @@ def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n
     for ax, p, v in zip(axes, prims, vel):
         s = np.linalg.norm(v, axis=1).reshape(ny, nx) * sf
         mappable = ax.pcolormesh(X * f, Y * f, s, shading="auto", cmap="viridis", vmin=0, vmax=vmax * sf)
-        ax.quiver(xy[:, 0] * f, xy[:, 1] * f, v[:, 0], v[:, 1], color="w", scale_units="xy", angles="xy",
-                  scale=None, width=0.004)
+        # Arrows show direction only (unit length, 0.8 of a cell); the colour shows the speed, whose
+        # range across a workspace spans decades.
+        norm = np.linalg.norm(v, axis=1, keepdims=True)
+        d = np.divide(v, norm, out=np.zeros_like(v), where=norm > 0) * 0.8 * min(w / nx, h / ny) * f
+        ax.quiver(xy[:, 0] * f, xy[:, 1] * f, d[:, 0], d[:, 1], color="w", scale_units="xy", angles="xy",
+                  scale=1.0, width=0.004)
         _draw_workspace(ax, workspace, f)
         ax.set_aspect("equal")
         ax.set_title(p.name, fontsize=9)
@@ -333,7 +337,7 @@ def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n
     return fig
 
 
-def animate(path, workspace, bodies, times, positions, goals, *, frames=60, fps=12, dpi=80):
+def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=12, dpi=80):
     """Write a GIF of the bodies moving (matplotlib's PillowWriter).
 
     Parameters
@@ -387,6 +391,9 @@ def animate(path, workspace, bodies, times, positions, goals, *, frames=60, fps=
         title.set_text(f"t = {ts[j]:.3g} s")
         return dots, title
 
+    # Lay the figure out once; re-solving the constrained layout on every frame dominates the cost.
+    fig.draw_without_rendering()
+    fig.set_layout_engine("none")
     anim = FuncAnimation(fig, update, frames=len(ts), blit=False)
     path = os.fspath(path)
     tmp = f"{path}.tmp-{os.getpid()}.gif"

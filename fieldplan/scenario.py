@@ -359,6 +359,7 @@ SCHEMA = {
         _k("trajectories", "bool", None, True, "trajectories.csv (predicted and every trial)."),
         _k("plots", "any", None, True, "true, false, or a list of `workspace`, `timeline`, `inputs`."),
         _k("animation", "bool", None, False, "animation.gif of the first trial."),
+        _k("animation_frames", "int", None, 48, "Frames of the animation (evenly spaced in time)."),
         _k("field_backdrop", "bool", None, True, "Shade the workspace plot by the fastest available speed."),
         _k("dpi", "int", None, 120, "Resolution of the PNG plots."),
     ],
@@ -440,6 +441,7 @@ class OutputSettings:
     trajectories: bool = True
     plots: tuple = PLOT_NAMES
     animation: bool = False
+    animation_frames: int = 48
     field_backdrop: bool = True
     dpi: int = 120
 
@@ -1415,6 +1417,9 @@ def _outputs(ctx, spec):
                                                 f"{_type_name(plots)}.")
     if isinstance(v["resample_rate"], float) and not v["resample_rate"] > 0:
         v["resample_rate"] = ctx.err(path + ("resample_rate",), f"must be > 0 Hz, found {spec['resample_rate']!r}.")
+    if isinstance(v["animation_frames"], int) and not 2 <= v["animation_frames"] <= 2000:
+        v["animation_frames"] = ctx.err(path + ("animation_frames",), f"must be between 2 and 2000, found "
+                                                                      f"{spec['animation_frames']!r}.")
     if isinstance(v["dpi"], int) and v["dpi"] < 20:
         v["dpi"] = ctx.err(path + ("dpi",), f"must be >= 20, found {spec['dpi']!r}.")
     if any(x is BAD for x in v.values()):

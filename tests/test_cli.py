@@ -280,3 +280,32 @@ def test_inspect_writes_fields_and_steerability(tmp_path, capsys):
     if "at_start" in rep:
         # four affine sources steer two bodies at most (counting rule K/2 = 2, PHYSICS-NOTES.md)
         assert rep["count_curves"]["bead"]["fraction"][2] == 0.0
+
+
+def test_compare_on_local_processes_and_on_dask(tmp_path):
+    """Sweeps run through concurrent.futures: a local process pool, or a dask.distributed scheduler."""
+    from fieldplan.compare import compare, make_executor
+    from fieldplan.scenario import load_scenario
+
+    sc = load_scenario(GOOD, name="x")
+    with make_executor(None, 2) as ex:
+        local = compare([sc], seeds=[0], trials=1, executor=ex)
+    assert local.rows[0]["errors"] == 0, local.rows[0]["error_messages"]
+    distributed = pytest.importorskip("dask.distributed")
+    with distributed.LocalCluster(n_workers=1, processes=False, threads_per_worker=1, dashboard_address=None) as cl:
+        with make_executor(cl.scheduler_address) as ex:
+            remote = compare([sc], seeds=[0], trials=1, executor=ex)
+    assert remote.rows[0]["errors"] == 0, remote.rows[0]["error_messages"]
+    # same seed, same task: the same numbers wherever it ran
+    for key in ("final_error", "input_energy", "min_separation"):
+        assert remote.rows[0][key] == pytest.approx(local.rows[0][key], rel=1e-12)
+
+
+def test_unreachable_scheduler_is_a_clear_error():
+    pytest.importorskip("dask.distributed")
+    from fieldplan import FieldplanError
+    from fieldplan.compare import make_executor
+
+    with pytest.raises(FieldplanError, match="scheduler at 'tcp://127.0.0.1:9'"):
+        with make_executor("tcp://127.0.0.1:9", timeout=1.0):
+            pass

@@ -245,3 +245,21 @@ def test_property_planned_and_exported_schedules_respect_limits(case, tmp_path_f
     assert independent_violations(written, sc.limits) == []
     summary = json.loads((folder / "out" / "summary.json").read_text())
     assert summary["schedule"]["limits_checked"] == sc.limits.to_dict()
+
+
+def test_plots_and_animation_are_written(tmp_path):
+    """Every plot and the GIF (matplotlib PillowWriter) end up in the folder, and are real images."""
+    import dataclasses
+
+    from fieldplan.scenario import OutputSettings
+
+    sc = load_scenario(scenario_text(trials=1), name="x")
+    sched = Schedule.from_segments(sc.actuator.channels, [Segment(0, 20.0, [0, 0, 0.8]), Segment(0, 20.0, [0.8, 0, 0])])
+    run = run_scenario(sc, schedule=sched)
+    outputs = dataclasses.replace(OutputSettings(), animation=True, animation_frames=6, dpi=40)
+    files = write_outputs(tmp_path / "out", run, outputs=outputs)
+    for role in ("workspace", "timeline", "inputs"):
+        assert open(files[role], "rb").read(8) == b"\x89PNG\r\n\x1a\n"
+    assert open(files["animation"], "rb").read(6) in (b"GIF89a", b"GIF87a")
+    summary = json.loads(open(files["summary"]).read())
+    assert sorted(summary["files"]) == listing(tmp_path / "out")
