@@ -236,7 +236,8 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
             t0 = time.perf_counter()
             live = closed_loop(sc.actuator, sc.truth_actuator, sc.bodies, sc.workspace, sc.starts, sc.goals,
                                limits=sc.limits, settings=sc.plan_settings(), rng=seed0 + k,
-                               brownian=sim.brownian, tracking_noise=sim.tracking_noise, latency=sim.latency)
+                               brownian=sim.brownian, tracking_noise=sim.tracking_noise, latency=sim.latency,
+                               **sim.simulator_options())
             t_plan += time.perf_counter() - t0
             g = _assigned_goals(live, goals)
             sched = getattr(live, "schedule", None)

@@ -43,15 +43,15 @@ def test_scenario_runs(path, tmp_path, monkeypatch, capsys):
     sc = load_scenario(path)
     out = tmp_path / "out"
     if sc.variants:
+        cmp_out = tmp_path / "cmp"
         args = ["compare", path, "--seeds", "1", "--trials", "1" if not FULL else str(sc.simulation.trials),
-                "--workers", "1", "--out", str(out), "--quiet"]
+                "--workers", "1", "--out", str(cmp_out), "--quiet"]
         code = main(args)
         err = capsys.readouterr().err
         assert code in (0, 1), err
-        rows = json.loads((out / "comparison.json").read_text())["rows"]
+        rows = json.loads((cmp_out / "comparison.json").read_text())["rows"]
         assert [r["label"] for r in rows] == [v.name for v in sc.variants]
         assert all(r["errors"] == 0 for r in rows), [r["error_messages"] for r in rows]
-        return
     args = ["run", path, "--out", str(out), "--quiet"]
     if not FULL:
         args += ["--trials", "1"]
