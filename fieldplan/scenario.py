@@ -1730,7 +1730,18 @@ def _actuator_config(act):
         if default is not _MISSING and _same(v, default):
             continue
         d[n] = _plain(v)
+        if not _is_plain(d[n]):
+            raise FieldplanError(f"{type(act).__name__} parameter {n!r} holds a {type(v).__name__}, which a scenario "
+                                 "file cannot hold; give the actuator a to_config() method returning plain data.")
     return d
+
+
+def _is_plain(v):
+    if isinstance(v, dict):
+        return all(isinstance(k, str) and _is_plain(x) for k, x in v.items())
+    if isinstance(v, list):
+        return all(_is_plain(x) for x in v)
+    return v is None or isinstance(v, (str, bool, int, float))
 
 
 def _same(a, b):

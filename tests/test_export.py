@@ -194,7 +194,8 @@ def test_property_exported_schedules_respect_limits(case, tmp_path_factory):
         return
     written = Schedule.read_csv(out / "schedule.csv", sc.actuator.channels)
     assert independent_violations(written, sc.limits) == []
-    assert written == Schedule.read_json(out / "schedule.json")
+    assert written == Schedule.read_json(out / "schedule.json") == run.schedule   # exact CSV/JSON round trip
+    assert written.labels == run.schedule.labels
 
 
 def test_property_checker_is_not_vacuous():
