@@ -309,3 +309,24 @@ def test_unreachable_scheduler_is_a_clear_error():
     with pytest.raises(FieldplanError, match="scheduler at 'tcp://127.0.0.1:9'"):
         with make_executor("tcp://127.0.0.1:9", timeout=1.0):
             pass
+
+
+def test_fit_writes_a_calibrated_actuator_a_scenario_can_use(tmp_path, capsys):
+    """`fieldplan fit` on the invented demo tracks, then a scenario that names the result."""
+    tracks = ROOT / "scenarios" / "calibration" / "tracks.csv"
+    if not tracks.exists():
+        pytest.skip("no demo tracking data")
+    out = tmp_path / "fit"
+    assert main(["fit", str(tracks), "--out", str(out), "--no-plots", "--quiet"]) == 0
+    assert (out / "actuator.json").exists() and (out / "actuator.npz").exists()
+    assert main(["fit", str(tracks), "--out", str(out), "--quiet"]) == 2          # exists, no --force
+    assert "--force" in capsys.readouterr().err
+    text = GOOD.replace("bead\n", "bead-2um\n").replace("5 um", "2 um").replace(
+        "actuator:\n  type: source-array\n  sources: [[0, 0], [1 mm, 0], [1 mm, 1 mm], [0, 1 mm]]\n  force: 3 pN\n",
+        "actuator: {type: calibrated, path: fit/actuator.json}\n").replace(
+        "limits:\n  time_step: 10 ms\n  channels:\n    source_1: {slew_rate: 50}\n", "")
+    text = text.replace("[[0.2 mm, 0.3 mm], [0.2 mm, 0.7 mm]]", "[[0.3 mm, 0.3 mm], [0.3 mm, 0.6 mm]]")
+    text = text.replace("[[0.8 mm, 0.3 mm], [0.8 mm, 0.7 mm]]", "[[0.7 mm, 0.3 mm], [0.7 mm, 0.6 mm]]")
+    path = write(tmp_path, text)       # the relative path resolves against the scenario's folder
+    assert main(["validate", str(path)]) == 0, capsys.readouterr().err
+    assert "CalibratedActuator" in capsys.readouterr().out
