@@ -844,15 +844,18 @@ class Plate(Actuator):
     def _mobility(self, body):
         return self.mobility if body.drift_mobility is None else float(body.drift_mobility)
 
-    def _samples(self, xy, freq_index=None):
-        """Per-unit-drive samples (n, F, 6) at points clipped onto the plate."""
+    def _samples(self, xy):
+        """Per-unit-drive samples (n, F, 6) of every tone frequency at points clipped onto the plate."""
         st = self._prepared()
-        x0, x1, y0, y1 = self.extent
-        p = np.column_stack([np.clip(xy[:, 0], x0, x1), np.clip(xy[:, 1], y0, y1)])
+        p = self._clip(xy)
         if self.use_grid:
             return st["grid"].sample(p)
-        freqs = st["frequencies"] if freq_index is None else st["frequencies"][np.atleast_1d(freq_index)]
-        return self._exact_samples(freqs, p)
+        return self._exact_samples(st["frequencies"], p)
+
+    def _clip(self, xy):
+        # A position off the plate sees the field at the nearest rim point: finite and continuous.
+        x0, x1, y0, y1 = self.extent
+        return np.column_stack([np.clip(xy[:, 0], x0, x1), np.clip(xy[:, 1], y0, y1)])
 
     def _velocity(self, body, medium, xy, u):
         f, a = float(u[0]), float(u[1])
@@ -861,8 +864,7 @@ class Plate(Actuator):
         st = self._prepared()
         freqs = st["frequencies"]
         hit = np.flatnonzero(np.isclose(freqs, f, rtol=1e-9, atol=0))
-        x0, x1, y0, y1 = self.extent
-        p = np.column_stack([np.clip(xy[:, 0], x0, x1), np.clip(xy[:, 1], y0, y1)])
+        p = self._clip(xy)
         if self.use_grid and len(hit):
             vals = st["grid"].sample(p)[:, hit[0], :]
         else:
@@ -882,8 +884,7 @@ class Plate(Actuator):
         if not (np.isfinite(a) and 0 <= a <= self.max_amplitude):
             raise ActuatorError(f"Plate amplitude {amplitude!r} must be in [0, {self.max_amplitude:g}] {self.drive_unit}.")
         self.check_body(body, medium)
-        x0, x1, y0, y1 = self.extent
-        p = np.column_stack([np.clip(xy[:, 0], x0, x1), np.clip(xy[:, 1], y0, y1)])
+        p = self._clip(xy)
         vals = self._exact_samples(np.array([f]), p)[:, 0, :]
         amp2, grad = _amplitude_fields(vals)
         return drift_law(2 * np.pi * f, a * a * amp2, a * a * grad, self._mobility(body),
@@ -950,7 +951,7 @@ def _positive_float(name, value):
 # ---------------------------------------------------------------------------------------------
 # plots
 # ---------------------------------------------------------------------------------------------
-def plot_modes(modes, count=6, columns=3, skip_rigid=True, resolution=101):
+def plot_modes(modes, count=6, columns=3, skip_rigid=True, resolution=101, indices=None):
     """Mode shapes with their nodal lines.
 
     Parameters
@@ -958,6 +959,8 @@ def plot_modes(modes, count=6, columns=3, skip_rigid=True, resolution=101):
     modes : PlateModes
     count : int
         Number of modes drawn.
+    indices : sequence of int, optional
+        Exactly which modes to draw (e.g. ``plate.excitable_modes()``); overrides ``count``.
     columns : int
     skip_rigid : bool
         Leave out zero-frequency (rigid-body) modes.
@@ -972,7 +975,12 @@ def plot_modes(modes, count=6, columns=3, skip_rigid=True, resolution=101):
     """
     import matplotlib.pyplot as plt
 
-    idx = [m for m in range(modes.n_modes) if not (skip_rigid and modes.omega[m] == 0)][:count]
+    if indices is not None:
+        idx = [int(m) for m in indices]
+    else:
+        idx = [m for m in range(modes.n_modes) if not (skip_rigid and modes.omega[m] == 0)][:count]
+    if not idx:
+        raise ActuatorError("plot_modes: no modes to draw.")
     rows = int(np.ceil(len(idx) / columns))
     fig, axes = plt.subplots(rows, columns, figsize=(3.2 * columns + 0.8, 3.0 * rows), squeeze=False,
                              constrained_layout=True)

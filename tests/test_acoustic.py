@@ -123,8 +123,8 @@ def test_stated_tolerance_is_met():
     """The estimated error is honest: a much finer basis moves the frequencies by less than tol
     (common practice, no source: a convergence study)."""
     tol = 1e-6
-    m = modes("SCFC", 12, a=0.25, tol=tol)   # rectangle with mixed edges, no clamped-free corner
-    fine = modes("SCFC", 12, a=0.25, degree=m.degree + 12)
+    m = modes("CSFS", 12, a=0.25, tol=tol)   # rectangle with mixed edges, no clamped-free corner
+    fine = modes("CSFS", 12, a=0.25, degree=m.degree + 12)
     assert m.converged and m.achieved <= tol
     assert np.max(np.abs(m.omega / fine.omega - 1)) < tol
 
