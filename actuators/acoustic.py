@@ -37,12 +37,14 @@ Particle drift (phenomenological)
     * ``mu`` is the dimensionless drift mobility of the body kind: the drift per radian of
       oscillation per unit gradient of the squared amplitude (so ``2 pi mu grad|w|^2`` is the
       drift per cycle). It is :attr:`fieldplan.Body.drift_mobility`, or the plate's ``mobility``
-      when the body leaves it unset. Default :data:`DEFAULT_MOBILITY` = 30, uncertain by about
-      a factor of ten either way (:data:`MOBILITY_RANGE`, 3 to 300): the value was chosen so
-      that a 20 um standing wave at 1 kHz on a 1 mm aluminium plate moves grains at about
-      5 mm/s, inside the mm/s to cm/s speeds of pattern formation on demonstration plates (from
-      memory, not a measurement). It is not derived from first principles: calibrate it by
-      tracking grains under one tone and fitting the speed.
+      when the body leaves it unset. Default :data:`DEFAULT_MOBILITY` = 100, uncertain by
+      about a factor of ten either way (:data:`MOBILITY_RANGE`, 10 to 1000): the value was
+      chosen so that a 20 um standing wave moves grains at a few mm/s at a few hundred Hz and
+      at 1-2 cm/s at 1 kHz on a 1 mm aluminium plate, the mm/s to cm/s speeds of pattern
+      formation on demonstration plates (from memory, not a measurement). The law makes the
+      speed grow as ``omega k A^2`` (k the bending wavenumber, A the amplitude). It is not
+      derived from first principles: calibrate it by tracking grains under one tone and fitting
+      the speed.
     * ``s`` is the regime's sign. In air (``medium.submerged`` False) heavy grains collect on
       nodal lines (Faraday, Phil. Trans. 121, 1831): ``s = -1``. On a plate under liquid, heavy
       sub-millimetre beads collect at antinodes (Phys. Rev. Lett. 122, 184301, 2019): ``s = +1``.
@@ -55,8 +57,9 @@ Particle drift (phenomenological)
       lift the grain, full drift from ``Gamma = 1 + width`` (default ``gate_width`` 0.2), and a
       continuous velocity gradient for the planner. Under liquid ``G = 1``.
 
-    The law is phenomenological: the speed scaling with ``grad |w|^2`` and the direction are
-    what observations support; the coefficient is a calibration parameter.
+    Only the direction rests on observation (the sources above). The speed law itself, drift
+    proportional to ``grad |w|^2``, is phenomenological, and its coefficient mu is a calibration
+    parameter: treat predicted speeds as order-of-magnitude until mu is fitted to your grains.
 
 Fields for the planner
     The actuator is not affine in its input (the gate and the amplitude squared), so the planner
@@ -109,9 +112,9 @@ __all__ = [
 ]
 
 #: Default dimensionless drift mobility mu (see the module docstring for its definition).
-DEFAULT_MOBILITY = 30.0
+DEFAULT_MOBILITY = 100.0
 #: Plausible range of mu, a factor of ten either side of the default (uncalibrated).
-MOBILITY_RANGE = (3.0, 300.0)
+MOBILITY_RANGE = (10.0, 1000.0)
 
 #: Typical handbook constants (Young's modulus Pa, Poisson ratio, density kg/m^3), from memory:
 #: check against your supplier's sheet.
