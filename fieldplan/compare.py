@@ -408,6 +408,7 @@ def _task(scenario, seed, trials):
         return {"error": str(exc)}
     agg = run.aggregate()
     agg["plan_success"] = run.plan_success
+    agg["plan_message"] = run.plan_message if run.plan_success is False else ""
     agg["successes"] = sum(t.success for t in run.trials)
     return agg
 
@@ -463,6 +464,12 @@ class Comparison:
                         txt += f" ± {format_si(sd, unit)}"
                     cells.append(txt)
             lines.append("| " + " | ".join(cells) + " |")
+        notes = [f"- {r['label']}: {r['plan_failures']} of {r['runs']} plan(s) did not reach every goal; first: "
+                 f"{_shorten(r['plan_message'])}" for r in self.rows if r.get("plan_failures")]
+        notes += [f"- {r['label']}: {r['errors']} run(s) failed: {_shorten(r['error_messages'][0])}"
+                  for r in self.rows if r.get("errors")]
+        if notes:
+            lines += ["", "Notes:"] + notes
         lines.append("")
         lines.append("Means over runs (± standard deviation); time to goal over successful runs only; "
                      "input energy is the integral of the squared channel values summed over the continuous channels "
@@ -512,6 +519,11 @@ class Comparison:
         fig.legend(handles, labels, loc="upper center", ncol=min(len(labels), 4), fontsize=8, frameon=False)
         fig.tight_layout(rect=(0, 0, 1, 0.92))
         return fig
+
+
+def _shorten(text, n=300):
+    text = " ".join(str(text).split())
+    return text if len(text) <= n else text[: n - 3] + "..."
 
 
 def _nan(v):
@@ -613,5 +625,7 @@ def compare(scenarios, *, seeds=(0,), trials=1, executor=None, progress=False):
             row[key] = float(finite.mean()) if finite.size else float("nan")
             row[key + "_sd"] = float(finite.std()) if finite.size > 1 else float("nan")
         row["steerability"], row["steerable"] = steerability_at_start(s)
+        row["plan_failures"] = sum(1 for r in ok if r.get("plan_success") is False)
+        row["plan_message"] = next((r["plan_message"] for r in ok if r.get("plan_message")), "")
         rows.append(row)
     return Comparison(rows, results)
