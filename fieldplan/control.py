@@ -27,6 +27,12 @@ least-squares compromise then sacrifices some bodies); scaling every body's step
 instead finds the largest step all moving bodies can take *together* along their routes, and the
 reward ``c a`` (small against the tracking term) makes the program take it.
 
+In timeshare mode the primitives of a period play one after another, so a body can touch a wall
+(or another body) in the middle of a period even when the period's end point is clear. For the
+first period the keep-out and separation rows are therefore also imposed in their worst order:
+every primitive that moves the body toward the wall (or the pair together) is assumed to play
+first, ``n . (p_0 + d) + sum_k min(0, n . F_k) r_k >= gap`` - linear in the rates.
+
 The separation constraint replaces ``|p_i - p_j| >= gap`` by its tangent half-plane at the
 linearisation point; since ``|x| >= n . x`` for a unit ``n`` it is a convex *restriction*: a solution
 of the program keeps the bodies apart. Keep-out, separation and trust region are soft with an
@@ -228,6 +234,9 @@ class StepData:
         Reference step at full progress ``a = 1``; ``None`` fixes ``a = 0`` (fixed references).
     progress_reward : float
         ``c``, reward per unit of progress.
+    worst_order_scale : float
+        Timeshare: fraction of a primitive's displacement that can happen before the others (1 for
+        one pass through the mix, 1/R when the mix is played in R rounds).
     track : ndarray, shape (H, n) or (n,)
         Tracking weight of each body, >= 0.
     lower, upper : ndarray, shape (H, K) or (K,)
@@ -286,6 +295,7 @@ class StepData:
     ref_dirs: np.ndarray | None = None
     progress_reward: float = 0.0
     trust_centre: np.ndarray | None = None
+    worst_order_scale: float = 1.0
 
 
 @dataclass
@@ -472,6 +482,25 @@ class StepProgram:
             wn = np.zeros((H, n, 2))
             rhs = np.full((H, n), -1.0)
         d["wn"], d["wrhs"] = wn, rhs
+        if self.timeshare:
+            F0 = d["F"][0]                                      # (K, n, 2)
+            drift0 = d["d"][0]
+            act = np.any(wn[0] != 0, axis=1)
+            proj = np.einsum("knc,nc->nk", F0, wn[0])
+            sc = float(data.worst_order_scale)
+            d["CwR"] = np.where(act[:, None], np.minimum(proj, 0.0), 0.0) * sc
+            d["rwR"] = np.where(act, rhs[0] - np.einsum("nc,nc->n", wn[0], d["p0"] + drift0), -1.0)
+            CpR = np.zeros((P, K))
+            rpR = np.full(P, -1.0)
+            if data.pairs is not None and len(data.pairs) and P:
+                pairs = np.asarray(data.pairs, dtype=int).reshape(-1, 2)
+                k = len(pairs)
+                nrm0 = per_h(data.pair_normals, (k, 2))[0]
+                rel = F0[:, pairs[:, 0]] - F0[:, pairs[:, 1]]   # (K, k, 2)
+                CpR[:k] = np.minimum(np.einsum("kpc,pc->pk", rel, nrm0), 0.0) * sc
+                relp = (d["p0"] + drift0)[pairs[:, 0]] - (d["p0"] + drift0)[pairs[:, 1]]
+                rpR[:k] = gap[0, :k] - np.einsum("pc,pc->p", nrm0, relp)
+            d["CpR"], d["rpR"] = CpR, rpR
         d["rho"] = float(data.slack_weight)
         return d
 
@@ -562,6 +591,16 @@ class StepProgram:
                 rr, cc = np.meshgrid(rows, pix(h), indexing="ij")
                 aadd(f"pairG{h}", rr.ravel(), cc.ravel())
                 aadd(f"pairS{h}", rows, ss_off + h * P + np.arange(P))
+        if self.timeshare:
+            r0 = new_rows("wallR", n)
+            rr, cc = np.meshgrid(r0 + np.arange(n), rix(0), indexing="ij")
+            aadd("wallR", rr.ravel(), cc.ravel())
+            aadd("wallRS", r0 + np.arange(n), sw_off + np.arange(n))
+            if P:
+                r0 = new_rows("pairR", P)
+                rr, cc = np.meshgrid(r0 + np.arange(P), rix(0), indexing="ij")
+                aadd("pairR", rr.ravel(), cc.ravel())
+                aadd("pairRS", r0 + np.arange(P), ss_off + np.arange(P))
         r0 = new_rows("walls", H * n)
         for h in range(H):
             rows = r0 + h * n + np.arange(n)
@@ -600,6 +639,9 @@ class StepProgram:
             self._aset("slew_b", -1.0)
         if self.timeshare:
             self._aset("sum", 1.0)
+            self._aset("wallRS", 1.0)
+            if P:
+                self._aset("pairRS", 1.0)
         names = [k for k in self._ablocks if k.startswith("tr")]
         for name, vals in zip(names, tvals):
             self._aset(name, vals)
@@ -673,6 +715,14 @@ class StepProgram:
             for h in range(H):
                 self._aset(f"pairG{h}", d["G"][h].ravel())
             lo[s:s + c], up[s:s + c] = d["gap"].ravel(), np.inf
+        if self.timeshare:
+            s, c = self._rows["wallR"]
+            self._aset("wallR", d["CwR"].ravel())
+            lo[s:s + c], up[s:s + c] = d["rwR"], np.inf
+            if P:
+                s, c = self._rows["pairR"]
+                self._aset("pairR", d["CpR"].ravel())
+                lo[s:s + c], up[s:s + c] = d["rpR"], np.inf
         s, c = self._rows["walls"]
         for h in range(H):
             self._aset(f"wallN{h}", d["wn"][h].ravel())
@@ -792,6 +842,14 @@ class StepProgram:
             slack_sum = slack_sum + cp.sum(ss)
         else:
             ss = None
+        if self.timeshare:
+            prm["CwR"] = cp.Parameter((n, K), name="wall_worst_order")
+            prm["rwR"] = cp.Parameter(n, name="wall_worst_rhs")
+            cons.append(prm["CwR"] @ r[0] + sw[0] >= prm["rwR"])
+            if P:
+                prm["CpR"] = cp.Parameter((P, K), name="pair_worst_order")
+                prm["rpR"] = cp.Parameter(P, name="pair_worst_rhs")
+                cons.append(prm["CpR"] @ r[0] + ss[0] >= prm["rpR"])
         # DPP forbids a parameter times an expression holding parameters, so the weighted
         # references enter as their own parameters (sqrt(w) * ref, sqrt(s) * previous).
         first = cp.multiply(prm["sqs"][0], r[0]) - prm["sqsprev"]
@@ -839,6 +897,12 @@ class StepProgram:
         if m:
             prm["C"].value = d["C"]
             prm["c"].value = d["c"]
+        if self.timeshare:
+            prm["CwR"].value = d["CwR"]
+            prm["rwR"].value = d["rwR"]
+            if P:
+                prm["CpR"].value = d["CpR"]
+                prm["rpR"].value = d["rpR"]
         for h in range(H):
             cv["F"][h].value = d["F"][h].reshape(K, nn).T
         if P:

@@ -94,6 +94,10 @@ class PlanSettings:
         cvxpy solver name for the ``"cvxpy"`` back end.
     separation_slots : int, optional
         Room for pair constraints per period (default all pairs up to 4 n).
+    timeshare_rounds : int
+        In timeshare mode, play each period's primitive mix in this many shorter rounds (fewer when
+        the hardware time step does not divide the period, one with a minimum dwell), so that a body
+        strays less from the straight path between period ends.
     """
 
     period: float | None = None
@@ -118,6 +122,7 @@ class PlanSettings:
     backend: str = "osqp"
     solver: str | None = None
     separation_slots: int | None = None
+    timeshare_rounds: int = 4
 
     def __post_init__(self):
         def positive(key, allow_none=True):
@@ -137,7 +142,7 @@ class PlanSettings:
                 raise FieldplanError(f"PlanSettings {key} must be a finite number >= 0, got {v!r}.")
         if self.clearance is not None and not (np.isfinite(self.clearance) and self.clearance >= 0):
             raise FieldplanError(f"PlanSettings clearance must be >= 0 m, got {self.clearance!r}.")
-        for key in ("horizon", "max_steps", "stall_window"):
+        for key in ("horizon", "max_steps", "stall_window", "timeshare_rounds"):
             v = getattr(self, key)
             if not (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= 1):
                 raise FieldplanError(f"PlanSettings {key} must be an integer >= 1, got {v!r}.")
@@ -332,8 +337,22 @@ class Controller:
         T = self._round_period(T)
         self.period = T
         self.length_unit = float(np.median(delta))
+        self._rounds = 1
+        if self.mode == "timeshare":
+            lim = self.limits
+            R = int(s.timeshare_rounds)
+            ts = lim.time_step if lim is not None else None
+            dwell = lim is not None and (lim.min_dwell or any(lim.get(c.name).min_dwell for c in self.channels))
+            while R > 1 and (dwell or (ts and abs(T / R / ts - np.round(T / R / ts)) > 1e-9)):
+                R -= 1
+            self._rounds = R
         # -- limits that depend on the period
         self._setup_limits()
+        self.blocked = None
+        if np.all(self._hi <= self._lo):
+            self.blocked = ("no input is left to plan with: every primitive breaks the declared hardware limits "
+                            "(see notes)" if self.mode == "timeshare" else
+                            "no input is left to plan with: the declared limits pin every channel")
         self._prev = self._idle_rate.copy()
         self._programs = {}
         self._H = s.horizon
@@ -402,13 +421,20 @@ class Controller:
         T = max(T, max(dwell))
         windows = [lim.get(c.name).rms_window for c in self.channels
                    if lim.get(c.name).rms is not None and lim.get(c.name).rms_window]
+        ts = lim.time_step
         if windows and self.settings.period is None:
-            # A window that is a whole number of periods makes the per-period RMS budget exact.
+            # A window that is a whole number of periods makes the per-period RMS budget exact; with
+            # a hardware step the period must also be a whole number of steps.
             W = min(windows)
             if W >= T:
-                T = W / np.ceil(W / T)
-        if lim.time_step:
-            T = max(lim.time_step, np.round(T / lim.time_step) * lim.time_step)
+                m0 = int(np.ceil(W / T))
+                for m in range(m0, m0 + 50):
+                    cand = W / m
+                    if not ts or abs(cand / ts - np.round(cand / ts)) < 1e-9:
+                        T = cand
+                        break
+        if ts:
+            T = max(ts, np.round(T / ts) * ts)
         return float(T)
 
     def _setup_limits(self):
@@ -442,8 +468,16 @@ class Controller:
             cl = lim.get(c.name)
             if cl.rms is None:
                 continue
-            g = None if cl.rms_window is None else max(1, int(np.floor(cl.rms_window / T + 1e-9)))
-            self._rms.append((j, float(cl.rms), g))
+            W = cl.rms_window
+            # Window W spans at most g = ceil(W / T) periods; T * (sum of g mean squares) bounds its
+            # integral, so sum <= rms^2 W / T is sufficient (exact when W is a multiple of T, which
+            # the automatic period arranges). A window within one period needs only q <= rms^2.
+            g = None if W is None else max(1, int(np.ceil(W / T - 1e-9)))
+            total = None if W is None else (float(cl.rms) ** 2 * (W / T if g > 1 else 1.0))
+            # With a slew limit a budget that shrinks faster than the input may ramp down cannot be
+            # met, so such channels are held at their sustainable level instead.
+            capped = self.mode == "linear" and self._slew is not None and np.isfinite(self._slew[j])
+            self._rms.append((j, float(cl.rms), g, total, capped))
 
     def _rms_bounds(self):
         """Per-period bounds from the RMS budgets: (lo0, hi0, rows, rhs0, rhs_later) in program units."""
@@ -451,13 +485,15 @@ class Controller:
         lo1, hi1 = self._lo.copy(), self._hi.copy()
         rows, rhs0, rhs1 = [], [], []
         hist = np.asarray(self._sq_hist) if self._sq_hist else np.zeros((0, len(self.channels)))
-        for j, rms, g in self._rms:
-            if g is None:
-                used = hist[:, j].sum()
-                budget = rms**2 * (len(hist) + 1) - used
-            else:
+        for j, rms, g, total, capped in self._rms:
+            # The whole schedule so far must stay within the limit too (a plan shorter than the
+            # window is judged on its whole length).
+            budget = rms**2 * (len(hist) + 1) - hist[:, j].sum()
+            if g is not None:
                 used = hist[-(g - 1):, j].sum() if g > 1 and len(hist) else 0.0
-                budget = rms**2 * g - used
+                budget = min(budget, total - used)
+            if capped:
+                budget = rms**2
             budget = max(budget, 0.0)
             if self.mode == "linear":
                 b = np.sqrt(budget) / self._scale[j]
@@ -636,8 +672,8 @@ class Controller:
             trust=delta_eff / L, trust_centre=(centre - self.origin) / L, slew=self._slew,
             rate_rows=rows, rate_rhs=(np.vstack([rhs0] + [rhs1] * (H - 1)) if rows is not None else None),
             pairs=pairs, pair_normals=nrm, pair_gap=pgap,
-            wall_points=(wpts - self.origin) / L, wall_normals=wnrm, wall_gap=self.radii * 1.02 / L,
-            slack_weight=s.slack_weight)
+            wall_points=(wpts - self.origin) / L, wall_normals=wnrm, wall_gap=(self.radii + np.maximum(0.5 * self.clearance, 0.02 * self.radii)) / L,
+            slack_weight=s.slack_weight, worst_order_scale=1.0 / self._rounds)
         sol = prog.solve(data)
         status = sol.status
         if status == "failed":
@@ -748,6 +784,17 @@ class Controller:
         d = B0.drift.reshape(-1) * T
         tgt = np.zeros((n, 2))
         tgt[movers] = D[movers]
+        if self.mode == "timeshare":
+            # Time fractions are non-negative and share the period: non-negative least squares.
+            from scipy.optimize import nnls
+
+            use = self._hi > 0
+            if not use.any():
+                return 0.0
+            x, _ = nnls(F[:, use], tgt.reshape(-1) - d)
+            a = float(min(1.0, 1.0 / max(x.sum(), 1e-300)))
+            res = np.linalg.norm(F[:, use] @ (a * x) + d - a * tgt.reshape(-1))
+            return a * max(0.0, 1.0 - res / max(a * np.linalg.norm(tgt), 1e-300))
         pinv = np.linalg.pinv(F, rcond=1e-6)
         r0 = pinv @ (-d)
         r1 = pinv @ tgt.reshape(-1)
@@ -872,7 +919,20 @@ class Controller:
 
         B = FieldBasis("timeshare", np.zeros((self.K, 1, 2)), np.zeros((1, 2)), self.channels,
                        primitives=tuple(self._prim_objs()), idle=self._idle_values)
-        segs = B.to_segments(w, T, start=t, min_duration=0.0)
+        R = self._rounds
+        if R > 1:
+            # The same mix played in R shorter rounds: excursions within a period shrink R-fold.
+            wr = w / R
+            if ts:
+                wr = np.round(wr / ts) * ts
+                while wr.sum() > T / R * (1 + 1e-12):
+                    k = int(np.argmax(wr))
+                    wr[k] -= ts
+            segs = []
+            for j in range(R):
+                segs += B.to_segments(wr, T / R, start=t + j * T / R, min_duration=0.0)
+        else:
+            segs = B.to_segments(w, T, start=t, min_duration=0.0)
         if ts:
             # Keep segment boundaries on the hardware grid (to_segments drops sub-step round-off).
             from .actuator import Segment
@@ -943,6 +1003,8 @@ class Controller:
                 out.append(None)
             elif self.route_reasons[i] is not None:
                 out.append(f"no route: {self.route_reasons[i]}")
+            elif getattr(self, "blocked", None):
+                out.append(self.blocked)
             elif i in stalled_bodies:
                 out.append(f"stalled {err[i]:.3g} m from its goal: the shared fields could not move it there "
                            f"without pushing the others away (recoveries tried: {self._stall_count[i]})")
@@ -1078,6 +1140,9 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
     if any(r is not None for r in ctrl.route_reasons):
         status = 3
         head = "no route for some bodies"
+    elif ctrl.blocked:
+        status = 3
+        head = "cannot plan"
     else:
         for _ in range(ctrl.settings.max_steps):
             pos = sim.positions
