@@ -544,6 +544,8 @@ class Plate(Actuator):
         if not (0.0 < lo < hi):
             raise ActuatorError(f"Plate band must satisfy 0 < low < high (Hz), got {band!r}.")
         self.band = (lo, hi)
+        if not (isinstance(n_tones, (int, np.integer)) and n_tones >= 1):
+            raise ActuatorError(f"Plate n_tones must be an integer >= 1, got {n_tones!r}.")
         self.n_tones = int(n_tones)
         if self.n_tones < 1:
             raise ActuatorError(f"Plate n_tones must be >= 1, got {n_tones!r}.")
@@ -561,6 +563,15 @@ class Plate(Actuator):
         self.use_grid = bool(use_grid)
         self.tones = None if tones is None else self._check_tones(tones)
         self._state = {}
+        # Kirchhoff theory needs the bending wavelength well above the thickness (common
+        # practice: ten times); beyond, shear and rotary inertia (Mindlin theory) matter.
+        k = bending_wavenumber(self._mode_frequency_limit(), self.thickness, self.youngs_modulus,
+                               self.poisson_ratio, self.density)
+        if 2 * np.pi / k < 10 * self.thickness:
+            warnings.warn(
+                f"Plate: the bending wavelength at {self._mode_frequency_limit():.4g} Hz is "
+                f"{2 * np.pi / k * 1e3:.3g} mm, under ten thicknesses ({self.thickness * 1e3:.3g} mm): "
+                "thin-plate (Kirchhoff) theory overestimates those frequencies.", RuntimeWarning, stacklevel=2)
 
     # -- parameters -------------------------------------------------------------------------
     def _check_tones(self, tones):

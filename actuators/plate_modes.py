@@ -1068,7 +1068,7 @@ def plate_modes(length_x, length_y, thickness, youngs_modulus, poisson_ratio, de
         count = int(np.ceil(1.2 * _weyl_count(a, b, rho_h, d, 2 * np.pi * fmax))) + 4
         while True:
             res = plate_modes(a, b, h, e, nu, rho, edges, supports, count, center=(cx, cy), tol=tol,
-                              max_degree=max_degree, method=method)
+                              max_degree=max_degree, method=method, degree=degree)
             if res.frequencies[-1] > fmax or count > 2000:
                 break
             count = int(count * 1.5) + 4

@@ -564,6 +564,13 @@ def test_bad_plate_parameters_raise_clear_errors(kwargs, match):
         Plate(**{**base, **kwargs})
 
 
+def test_thick_plate_warns_that_thin_plate_theory_fails():
+    """Kirchhoff theory needs bending wavelength >> thickness (common practice, no source: ten
+    thicknesses)."""
+    with pytest.warns(RuntimeWarning, match="Kirchhoff"):
+        Plate(A, A, 0.02, band=(100.0, 5000.0), cache_dir=False)
+
+
 def test_bad_calls_raise(offset_plate):
     xy = np.array([[0.0, 0.01]])
     freq = offset_plate.channels[0]
