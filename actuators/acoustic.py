@@ -631,7 +631,7 @@ class Plate(Actuator):
         return modes
 
     def _participation(self):
-        """Modal excitation per unit drive: phi_m(x_d) (force) or omega^2-free Gamma_m (base)."""
+        """Modal excitation per unit drive: phi_m(x_d) for a force, Gamma_m for a base drive (times omega^2)."""
         m = self.modes
         if self.excitation == "force":
             return m.shape(np.array([self.drive_point]))[0]
