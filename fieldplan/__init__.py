@@ -12,6 +12,18 @@ Simulation
     Simulator, rollout, Rollout
 Errors
     FieldplanError, UnitError, ActuatorError, WorkspaceError, LimitError, ScenarioError
+
+Modules with their own public surface
+    fieldplan.plan       plan, PlanSettings, PlanResult, Controller (routes + step program)
+    fieldplan.live       run_live, closed_loop (the same controller against a tracker and driver)
+    fieldplan.routes     occupancy graph, A* routes, goal assignment
+    fieldplan.steer      steerability, speed_map, count_curve, select_primitives, compare_designs,
+                         mirror_check, symmetry_report (plots in fieldplan.steer_plots)
+    fieldplan.tracking   read_tracks, velocity_samples (tracking CSV; TrackingDataError)
+    fieldplan.calibrate  fit_field, CalibratedActuator, load_calibrated, fit_parameters,
+                         calibrate_command (CalibrationError)
+    fieldplan.scenario   load_scenario and the scenario schema; fieldplan.cli is the command
+    fieldplan.testing    check_actuator (the contract suite), SourceArray
 """
 
 from .actuator import TAGS, Actuator, Channel, FieldBasis, Primitive, Segment
