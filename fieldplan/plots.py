@@ -252,8 +252,23 @@ def plot_inputs(schedule, *, limits=None):
     for c in schedule.channels:
         if c.unit not in units:
             units.append(c.unit)
-    fig = _figure(figsize=(7.5, 1.2 + 2.2 * len(units)), layout="constrained")
-    axes = np.atleast_1d(fig.subplots(len(units), 1, sharex=True, squeeze=False)[:, 0])
+    # Time-shared primitives (tones, current patterns) read better as a raster of which one played.
+    names = [lab for lab in dict.fromkeys(schedule.labels) if lab and lab != "mix"]
+    raster = 1 < len(names) <= 40
+    panels = len(units) + (1 if raster else 0)
+    fig = _figure(figsize=(7.5, 1.2 + 2.2 * len(units) + (0.18 * len(names) + 0.8 if raster else 0)),
+                  layout="constrained")
+    axes = np.atleast_1d(fig.subplots(panels, 1, sharex=True, squeeze=False)[:, 0])
+    if raster:
+        ax = axes[-1]
+        for i, name in enumerate(names):
+            spans = [(t, d) for t, d, lab in zip(schedule.starts, schedule.durations, schedule.labels) if lab == name]
+            ax.broken_barh(spans, (i - 0.4, 0.8), color="0.3" if name == "idle" else f"C{i % 10}")
+        ax.set_yticks(range(len(names)), names, fontsize=6)
+        ax.set_ylim(-0.6, len(names) - 0.4)
+        ax.set_ylabel("primitive played")
+        ax.grid(axis="x", alpha=0.3)
+        axes = axes[:-1]
     t = np.append(schedule.starts, schedule.end)
     for ax, unit in zip(axes, units):
         for k, c in enumerate(schedule.channels):
@@ -270,7 +285,7 @@ def plot_inputs(schedule, *, limits=None):
         ax.set_ylabel(f"value{shown}" if shown else "value [dimensionless]")
         ax.grid(alpha=0.3)
         ax.legend(fontsize=7, loc="upper right", ncol=min(4, len(schedule.channels)))
-    axes[-1].set_xlabel("time [s]")
+    fig.axes[-1].set_xlabel("time [s]")
     axes[0].set_title("inputs (dashed: declared limits)")
     return fig
 
