@@ -175,6 +175,8 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
             if obs.shape != (n, 2):
                 raise FieldplanError(f"observe() must return shape ({n}, 2) in m (or None), got {obs.shape}.")
             rows_ok = np.all(np.isfinite(obs), axis=1)
+        else:
+            obs = np.full((n, 2), np.nan)
         if rows_ok.all():
             in_a_row = 0
         else:
@@ -337,6 +339,9 @@ def closed_loop(model, truth, bodies, workspace, starts, goals, *, limits=None, 
 
     res = run_live(ctrl, observe, sim.apply, duration=duration, on_step=on_step, latency=latency, t0=sim.time)
     times, pos = sim.history()
+    if times[-1] < sim.time:
+        times = np.append(times, sim.time)
+        pos = np.concatenate([pos, sim.positions[None]], axis=0)
     tol = ctrl.tolerance
     metrics = compute_metrics(times, pos, bodies, ctrl.goals, tol, res.schedule if res.schedule.n_segments else None,
                               sim.events)

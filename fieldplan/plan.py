@@ -1173,6 +1173,10 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
         bar.close()
     schedule = Schedule.from_segments(ctrl.channels, segments) if segments else Schedule.empty(ctrl.channels)
     times, pos = sim.history()
+    if times[-1] < sim.time:
+        # The record is thinned to a quarter period; the final state belongs in it.
+        times = np.append(times, sim.time)
+        pos = np.concatenate([pos, sim.positions[None]], axis=0)
     metrics = compute_metrics(times, pos, bodies, ctrl.goals, ctrl.tolerance, schedule if segments else None,
                               sim.events)
     final = sim.positions
