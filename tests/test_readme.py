@@ -14,6 +14,8 @@ BLOCKS = re.findall(r"```python\n(.*?)```", README.read_text(), flags=re.S)
 
 @pytest.mark.parametrize("index", range(len(BLOCKS)))
 def test_readme_example_runs(index, tmp_path):
+    # examples refer to files under scenarios/ as a user in the repository root would
+    (tmp_path / "scenarios").symlink_to(README.parent / "scenarios")
     script = tmp_path / f"example_{index + 1}.py"
     script.write_text(BLOCKS[index])
     env = dict(os.environ, MPLBACKEND="Agg")
