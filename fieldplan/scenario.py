@@ -13,7 +13,6 @@ converted by :func:`fieldplan.units.to_si`.
 
 from __future__ import annotations
 
-import copy
 import dataclasses
 import difflib
 import hashlib
@@ -878,7 +877,7 @@ def _bodies(ctx, kinds):
     return out if ok else BAD
 
 
-def _placements(ctx, section, spec, bodies, workspace, kind_index):
+def _placements(ctx, section, spec, bodies, workspace):
     """Start or goal positions (n, 2) from explicit lists or a seeded random draw."""
     path = (section,)
     n = len(bodies)
@@ -1460,8 +1459,8 @@ def _build_sections(ctx, data, name):
         bodies = [b for b, count, _ in kinds for _ in range(count)]
     starts = goals = BAD
     if bodies is not BAD:
-        starts = _placements(ctx, "starts", data["starts"], bodies, workspace, kinds) if "starts" in data else BAD
-        goals = _placements(ctx, "goals", data["goals"], bodies, workspace, kinds) if "goals" in data else BAD
+        starts = _placements(ctx, "starts", data["starts"], bodies, workspace) if "starts" in data else BAD
+        goals = _placements(ctx, "goals", data["goals"], bodies, workspace) if "goals" in data else BAD
     unlabelled = False
     if isinstance(data.get("goals"), dict) and "unlabelled" in data["goals"]:
         unlabelled = _bool(ctx, ("goals", "unlabelled"), data["goals"]["unlabelled"])
@@ -1825,8 +1824,3 @@ def schema_reference():
             lines.append(f"| `{k.name}` | {kind} | {k.unit or ''} | {default} | {k.doc} |")
         lines.append("")
     return "\n".join(lines)
-
-
-def copy_scenario(sc):
-    """Deep copy (actuators included)."""
-    return copy.deepcopy(sc)
