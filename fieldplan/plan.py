@@ -6,7 +6,11 @@ solves the step program (:mod:`fieldplan.control`) and returns the first period'
 watches every body's progress along its route and, when bodies stall (shared fields often have
 local minima where no input improves every body at once), recovers by moving one stalled body while
 the others hold where they are, then by a longer horizon, then by a different route, and reports
-what it did in :attr:`Controller.stalls`.
+what it did in :attr:`Controller.stalls`. When the fields lack the rank to move all bodies in one
+period (fewer independent inputs than twice the bodies, in linear mode), the recovery plays
+Lie-bracket cycles: four periods ``u_a, u_b, -u_a, -u_b`` whose net motion is the bracket
+``T^2 [f_a, f_b]`` of two fields, a direction no single period offers - slow (second order) but it
+moves bodies the counting rule says cannot be moved independently.
 
 :func:`plan` iterates the controller on the model (open loop) until every body is within tolerance
 of its goal at the same time, or a time limit; the :class:`PlanResult` says which body did not
@@ -362,6 +366,8 @@ class Controller:
         self._planned = np.zeros(self.n)
         self._hist_adv = collections.deque(maxlen=s.stall_window + 1)
         self._phase = None
+        self._cycle = []
+        self._rank = self.K
         self._cool = 0
         self._stall_count = np.zeros(self.n, dtype=int)
         self._turns = np.zeros(self.n, dtype=int)
@@ -639,6 +645,20 @@ class Controller:
         weights[arrived] *= self.ARRIVED_WEIGHT
         # The reward grows with the step length, not its square, so the final approach keeps its drive.
         reward = s.progress_weight * float(np.sum(weights[None, :] * np.linalg.norm(steps, axis=2))) / L
+        # -- a Lie-bracket cycle instead of the program (recovery when the fields lack rank)
+        if self._cycle or (self._phase is not None and self._phase["kind"] == "bracket"):
+            segs = self._bracket_step(p, t, fields, drift, eps, adv, arrived, holds, weights)
+            if segs is not None:
+                self._prev = np.asarray(segs[0].values) / self._scale
+                self._record_rms(segs)
+                self._pred = None
+                self._planned = np.zeros(n)
+                self._step += 1
+                self.records.append({
+                    "time": float(t), "status": "bracket", "solve_time": 0.0, "solver_time": 0.0,
+                    "step_time": time.perf_counter() - tic, "max_slack": 0.0, "slack_pairs": 0.0,
+                    "slack_walls": 0.0, "remaining": rem.copy(), "horizon": 0, "progress": 0.0, "phase": "bracket"})
+                return segs
         # -- program data in program units: lengths in L, rates as fractions of the channel span
         prog = self._program(H)
         # Period h uses the fields at the predicted start of period h (frozen if not relinearising).
@@ -726,9 +746,17 @@ class Controller:
             gain = self._hist_rem[-1 - W // 2][ph["bodies"]] - rem[ph["bodies"]]
             if np.any(gain > 0.25 * np.sum(np.asarray(self._hist_adv)[-W // 2:, ph["bodies"]], axis=0)):
                 ph["until"] = self._step + W // 2
+        if ph is not None and ph["kind"] == "bracket" and self._step >= ph["until"] and not self._cycle \
+                and ph.get("extended", 0) < 8 and total < ph["total"] * 0.95:
+            # Second-order cycles are slow but steady: keep going while they pay.
+            ph["until"] = self._step + 4 * W
+            ph["total"] = total
+            ph["extended"] = ph.get("extended", 0) + 1
         if ph is not None:
-            done = self._step >= ph["until"] or arrived[ph["bodies"]].all()
+            done = (self._step >= ph["until"] and not self._cycle) or arrived[ph["bodies"]].all()
             if done:
+                gained = (ph.get("total0", total) - total) / max(ph.get("total0", total), 1e-300)
+                self._last_phase = (ph["kind"], gained)
                 self._phase = None
                 self._cool = W // 2
                 self._hist_rem.clear()
@@ -750,6 +778,8 @@ class Controller:
                 self._fruitless += 1
                 moving = np.flatnonzero(~arrived & routed)
                 ph = self._recover(stalled, moving, p, rem, progress, expected, t)
+                if ph is not None:
+                    ph["total0"] = ph["total"] = total
         if ph is not None:
             for i, w in ph.get("weights", {}).items():
                 weights[i] = w * s.tracking_weight
@@ -759,7 +789,7 @@ class Controller:
             H = ph.get("horizon", H)
         if self.gave_up is None and self._fruitless >= 6 + 2 * n:
             self.gave_up = (f"no body got closer to its goal over {self._fruitless} stall recoveries "
-                            "(re-weighting, subset moves, longer horizon, new routes)")
+                            "(subset moves, bracket cycles, longer horizon, new routes)")
         self._H = H
         return weights, holds, H
 
@@ -839,7 +869,7 @@ class Controller:
         W = s.stall_window
         order = sorted(stalled, key=lambda i: (self._stall_count[i], -rem[i]))
         b = int(order[0])
-        level = self._stall_count[b] % 3
+        level = self._stall_count[b] % 4
         for i in stalled:
             self._stall_count[i] += 1
         names = ", ".join(f"{i} ({self.bodies[i].name})" for i in stalled)
@@ -857,7 +887,17 @@ class Controller:
                                    f"{[i for i in waiting if i in moving]} waited where they were")
                 return self._phase
             level = 1
-        if level <= 1:
+        last_kind, last_gain = getattr(self, "_last_phase", (None, 0.0))
+        if last_kind == "bracket" and last_gain > 0.1:
+            level = 1                                          # it paid last time: again
+        if level == 1 and self._can_bracket(moving):
+            self._phase = {"kind": "bracket", "bodies": [int(i) for i in moving], "until": self._step + 8 * W,
+                           "start": self._step}
+            self._cycle = []
+            self.stalls.append(f"{head}; the fields have rank {self._rank} < {2 * self.n} = 2 x bodies: "
+                               f"played Lie-bracket cycles (four periods each) for up to {8 * W} periods")
+            return self._phase
+        if level <= 2:
             H = min(max(2 * s.horizon, s.horizon + 2), 8)
             self._phase = {"kind": "horizon", "bodies": [int(i) for i in stalled], "until": self._step + 2 * W,
                            "horizon": H}
@@ -866,6 +906,107 @@ class Controller:
             self._reroute(b, p, t, head)
             self._phase = {"kind": "reroute", "bodies": [b], "until": self._step + W}
         return self._phase
+
+    def _can_bracket(self, moving):
+        """Brackets help when the fields cannot span the moving bodies' motions in one period."""
+        if self.mode != "linear" or self._slew is not None or self._rms:
+            return False
+        # Bodies that have arrived must stay: they count as much as the moving ones.
+        F = self._B0.fields.reshape(self.K, -1).T
+        self._rank = int(np.linalg.matrix_rank(F, tol=1e-6 * max(np.abs(F).max(), 1e-300)))
+        return self._rank < 2 * self.n and self.K >= 2
+
+    def _bracket_step(self, p, t, fields, drift, eps, adv, arrived, holds, weights):
+        """One period of a Lie-bracket cycle: four periods of u_a, u_b, -u_a, -u_b at amplitude s.
+
+        For an affine actuator with fields f_k the cycle moves every body by
+        ``T^2 s^2 [f_a, f_b] + O(T^3)`` with the Lie bracket ``[f_a, f_b] = Df_b f_a - Df_a f_b``
+        (the commutator of the two flows; e.g. Murray, Li & Sastry, A Mathematical Introduction to
+        Robotic Manipulation, 1994, ch. 7): a direction no single period can produce. The pair and the
+        signed amplitude are chosen each cycle by weighted least squares on the desired motion.
+        """
+        from .actuator import Segment
+
+        T = self.period
+        if self._cycle:
+            vals = self._cycle.pop(0)
+            return [Segment(t, T, vals, "bracket")]
+        n, K = self.n, self.K
+        sc = self._scale[:, None, None]
+        f = fields[:, 0] * sc                                   # (K, n, 2) m/s at full scale
+        Jx = (fields[:, 1] - fields[:, 0]) * sc / eps           # d f / dx
+        Jy = (fields[:, 2] - fields[:, 0]) * sc / eps
+        # (J_b f_a)[b, a, i] = Jx_b * f_a,x + Jy_b * f_a,y
+        JF = Jx[:, None] * f[None, :, :, :1] + Jy[:, None] * f[None, :, :, 1:]
+        G = JF - np.swapaxes(JF, 0, 1)                          # [f_a, f_b] at [b, a]? see below
+        # G[b, a] = J_b f_a - J_a f_b = [f_a, f_b]
+        want = np.zeros((n, 2))
+        w = weights.copy()
+        for i in range(n):
+            if arrived[i]:
+                want[i] = self.goals[i] - p[i]
+            elif i in holds:
+                want[i] = holds[i] - p[i]
+                w[i] = self.HOLD_WEIGHT
+            else:
+                q = point_at(self.routes[i], self._cum[i], self._s[i] + 4 * adv[i])
+                want[i] = q - p[i]
+        want -= 4 * T * drift[0]
+        wv = np.repeat(w, 2)
+        Dv = want.ravel()
+        smax = np.minimum(self._hi, -self._lo)
+        ia, ib = np.triu_indices(K, 1)
+        C = T * T * G[ib, ia].reshape(len(ia), -1)              # cycle displacement per unit s^2
+        lim = np.minimum(smax[ia], smax[ib]) ** 2
+        num = C @ (wv * Dv)
+        den = np.maximum((C * C) @ wv, 1e-300)
+        beta = np.clip(num / den, -lim, lim)
+        gain = 2 * beta * num - beta**2 * den
+        base = float(np.sum(wv * Dv * Dv))
+        order = np.argsort(-gain)[:12]
+        for j in order:
+            if gain[j] <= 0.02 * base or lim[j] <= 0:
+                return None
+            a, b = int(ia[j]), int(ib[j])
+            sgn = 1.0 if beta[j] >= 0 else -1.0
+            amp = np.sqrt(abs(beta[j]))
+            if sgn < 0:
+                a, b = b, a                                    # reversed order flips the bracket
+            legs = []
+            for k, sign in ((a, 1.0), (b, 1.0), (a, -1.0), (b, -1.0)):
+                r = np.zeros(K)
+                r[k] = sign * amp
+                legs.append(r)
+            # first-order excursions of the legs must stay clear of walls and of each other
+            x = p.copy()
+            ok = True
+            for r in legs:
+                x = x + T * (drift[0] + np.tensordot(r, f, axes=1))
+                if not self._in_free(x) or not self._apart(x):
+                    ok = False
+                    break
+            if not ok:
+                continue
+            vals = [np.clip(r * self._scale, [c.lower for c in self.channels], [c.upper for c in self.channels])
+                    for r in legs]
+            self._cycle = vals[1:]
+            return [Segment(t, T, vals[0], "bracket")]
+        return None
+
+    def _in_free(self, x):
+        for rad in np.unique(self.radii):
+            idx = self.radii == rad
+            if not np.all(self.workspace.contains(x[idx], float(rad) * 1.02)):
+                return False
+        return True
+
+    def _apart(self, x):
+        if self.n < 2:
+            return True
+        d = np.linalg.norm(x[:, None] - x[None], axis=2)
+        need = self.radii[:, None] + self.radii[None] + 0.5 * self.clearance
+        np.fill_diagonal(d, np.inf)
+        return bool(np.all(d >= need))
 
     def _reroute(self, b, p, t, head):
         s = self.settings
