@@ -347,9 +347,12 @@ class Controller:
             R = int(s.timeshare_rounds)
             ts = lim.time_step if lim is not None else None
             dwell = lim is not None and (lim.min_dwell or any(lim.get(c.name).min_dwell for c in self.channels))
-            while R > 1 and (dwell or (ts and abs(T / R / ts - np.round(T / R / ts)) > 1e-9)):
+            # Rounds must stay whole numbers of hardware steps, and fine enough (10 steps or more)
+            # that rounding each slice to the step does not swamp the mix.
+            while R > 1 and (dwell or (ts and (abs(T / R / ts - np.round(T / R / ts)) > 1e-9 or T / R < 10 * ts))):
                 R -= 1
             self._rounds = R
+        self._q_res = np.zeros(self.K)
         # -- limits that depend on the period
         self._setup_limits()
         self.blocked = None
@@ -599,7 +602,10 @@ class Controller:
         err = np.linalg.norm(p - self.goals, axis=1)
         arrived = err <= self.tolerance
         # -- how far to advance each reference: a trust radius, or what the fields can do this period
-        ahead = np.array([point_at(self.routes[i], self._cum[i], self._s[i] + delta[i]) for i in range(n)])
+        # Pure pursuit: aim at the route point a trust radius plus the cross-track error ahead, so a
+        # body off its route heads back obliquely instead of straight sideways (which the fields
+        # may not allow, e.g. across a trap line).
+        ahead = np.array([point_at(self.routes[i], self._cum[i], self._s[i] + delta[i] + dist[i]) for i in range(n)])
         dirs = ahead - p
         nd = np.linalg.norm(dirs, axis=1, keepdims=True)
         dirs = np.where(nd > 0, dirs / np.maximum(nd, 1e-300), 0.0)
@@ -610,15 +616,15 @@ class Controller:
         weights, holds, H = self._stall_logic(p, rem, adv, arrived, t, self._planned)
         # References: base point + progress a * step along the route (a chosen by the program);
         # bodies that wait, and bodies that have arrived, hold a fixed point.
-        # The base point is the body's own point on its route (sideways pushes are pulled back); a
-        # body that has once come close to its goal keeps the goal itself as base, so what the
-        # final approach gained is not lost to the others' fields.
+        # The base point is where the body is and the step aims at the route point ahead (pure
+        # pursuit: sideways offsets are corrected by the aim, never demanded against the fields); a
+        # body that has once come close to its goal keeps the goal itself as base, so what the final
+        # approach gained is not lost to the others' fields.
         self._s_best = np.maximum(self._s_best, self._s)
         targets = np.empty((H, n, 2))
-        base = np.empty((H, n, 2))
+        base = np.repeat(p[None], H, axis=0)
         for i in range(n):
-            targets[:, i] = reference_points(self.routes[i], self._cum[i], self._s[i], adv[i], H)
-            base[:, i] = point_at(self.routes[i], self._cum[i], np.full(H, self._s[i]))
+            targets[:, i] = reference_points(self.routes[i], self._cum[i], self._s[i] + dist[i], adv[i], H)
             if self._s_best[i] >= self._cum[i][-1] - 3 * self.tolerance[i]:
                 base[:, i] = self.goals[i]
                 targets[:, i] = self.goals[i]
@@ -963,9 +969,12 @@ class Controller:
         beta = np.clip(num / den, -lim, lim)
         gain = 2 * beta * num - beta**2 * den
         base = float(np.sum(wv * Dv * Dv))
+        # Brackets are small (second order), so judge them by direction, not size: the weighted
+        # cosine between the cycle's motion and the wanted motion.
+        cosine = np.abs(num) / np.maximum(np.sqrt(den * base), 1e-300)
         order = np.argsort(-gain)[:12]
         for j in order:
-            if gain[j] <= 0.02 * base or lim[j] <= 0:
+            if gain[j] <= 0 or cosine[j] < 0.2 or lim[j] <= 0:
                 return None
             a, b = int(ia[j]), int(ib[j])
             sgn = 1.0 if beta[j] >= 0 else -1.0
@@ -1049,31 +1058,27 @@ class Controller:
         dwell = 0.0
         if lim is not None:
             dwell = max([lim.min_dwell or 0.0] + [lim.get(c.name).min_dwell or 0.0 for c in self.channels])
-        if ts:
-            w = np.round(w / ts) * ts
-            while w.sum() > T * (1 + 1e-12):
-                k = int(np.argmax(w))
-                w[k] -= ts
-        if dwell:
-            w[w < dwell * (1 - 1e-9)] = 0.0
         from .actuator import FieldBasis
 
         B = FieldBasis("timeshare", np.zeros((self.K, 1, 2)), np.zeros((1, 2)), self.channels,
                        primitives=tuple(self._prim_objs()), idle=self._idle_values)
         R = self._rounds
-        if R > 1:
+        segs = []
+        for j in range(R):
             # The same mix played in R shorter rounds: excursions within a period shrink R-fold.
             wr = w / R
             if ts:
-                wr = np.round(wr / ts) * ts
+                # Error diffusion: what rounding to the hardware step takes from one round is given
+                # back in the next, so the mix played over time is the one planned.
+                target = wr + self._q_res
+                wr = np.maximum(np.round(target / ts) * ts, 0.0)
                 while wr.sum() > T / R * (1 + 1e-12):
                     k = int(np.argmax(wr))
                     wr[k] -= ts
-            segs = []
-            for j in range(R):
-                segs += B.to_segments(wr, T / R, start=t + j * T / R, min_duration=0.0)
-        else:
-            segs = B.to_segments(w, T, start=t, min_duration=0.0)
+                self._q_res = np.clip(target - wr, -ts, ts)
+            if dwell:
+                wr[wr < dwell * (1 - 1e-9)] = 0.0
+            segs += B.to_segments(wr, T / R, start=t + j * T / R, min_duration=0.0)
         if ts:
             # Keep segment boundaries on the hardware grid (to_segments drops sub-step round-off).
             from .actuator import Segment
