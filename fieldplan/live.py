@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .actuator import Segment
 from .errors import FieldplanError
 from .plan import Controller
 
@@ -103,8 +104,6 @@ class LiveResult:
 
 def _window(applied, t_from, t_to):
     """The parts of applied segments that fall within [t_from, t_to] (for latency compensation)."""
-    from .actuator import Segment
-
     out = []
     for sg in applied:
         a, b = max(sg.start, t_from), min(sg.start + sg.duration, t_to)
@@ -149,7 +148,6 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
     -------
     LiveResult
     """
-    from .actuator import Segment
     from .schedule import Schedule
 
     if latency < 0 or not np.isfinite(latency):

@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .actuator import _group_bodies
+from .actuator import FieldBasis, Segment, _group_bodies
 from .control import (StepData, StepProgram, pair_slots, point_at, polyline_arclength, project_to_route,
                       reference_points, variation_length)
 from .errors import FieldplanError, WorkspaceError
@@ -931,8 +931,6 @@ class Controller:
         Robotic Manipulation, 1994, ch. 7): a direction no single period can produce. The pair and the
         signed amplitude are chosen each cycle by weighted least squares on the desired motion.
         """
-        from .actuator import Segment
-
         T = self.period
         if self._cycle:
             vals = self._cycle.pop(0)
@@ -1020,7 +1018,6 @@ class Controller:
     def _reroute(self, b, p, t, head):
         s = self.settings
         try:
-            other_goals = np.delete(self.goals, b, axis=0)
             # A new route from where the body is, field-aware (time cost) so it seeks where the
             # fields can push it; other bodies' current positions are avoided like goals.
             rp = plan_routes(self.workspace, [self.bodies[b]] + [self.bodies[j] for j in range(self.n) if j != b],
@@ -1028,7 +1025,6 @@ class Controller:
                              np.vstack([self.goals[b], np.delete(p, b, axis=0)]),
                              clearance=self.clearance, resolution=s.route_resolution, actuator=self.actuator,
                              field_aware=True, assign=False, graphs=self._graphs)
-            del other_goals
             r = rp.routes[0]
         except Exception as exc:       # noqa: BLE001 - a failed re-route must not stop the controller
             r = None
@@ -1047,8 +1043,6 @@ class Controller:
         T = self.period
         lim = self.limits
         if self.mode == "linear":
-            from .actuator import Segment
-
             u = rate * self._scale
             lo = np.array([c.lower for c in self.channels])
             hi = np.array([c.upper for c in self.channels])
@@ -1058,8 +1052,6 @@ class Controller:
         dwell = 0.0
         if lim is not None:
             dwell = max([lim.min_dwell or 0.0] + [lim.get(c.name).min_dwell or 0.0 for c in self.channels])
-        from .actuator import FieldBasis
-
         B = FieldBasis("timeshare", np.zeros((self.K, 1, 2)), np.zeros((1, 2)), self.channels,
                        primitives=tuple(self._prim_objs()), idle=self._idle_values)
         R = self._rounds
@@ -1081,8 +1073,6 @@ class Controller:
             segs += B.to_segments(wr, T / R, start=t + j * T / R, min_duration=0.0)
         if ts:
             # Keep segment boundaries on the hardware grid (to_segments drops sub-step round-off).
-            from .actuator import Segment
-
             fixed, tt = [], t
             for sg in segs:
                 d = float(np.round(sg.duration / ts) * ts)
