@@ -223,8 +223,12 @@ class Simulator:
         return xy
 
     def history(self):
-        """Recorded ``times (T,)`` s and true ``positions (T, n, 2)`` m."""
-        return np.asarray(self._times), np.asarray(self._hist)
+        """Recorded ``times (T,)`` s and true ``positions (T, n, 2)`` m, always ending with the current state."""
+        times, hist = list(self._times), list(self._hist)
+        if times[-1] < self.time:
+            times.append(self.time)
+            hist.append(self.positions.copy())
+        return np.asarray(times), np.asarray(hist)
 
 
 @dataclass

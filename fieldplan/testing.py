@@ -279,9 +279,30 @@ class SourceArray(Actuator):
     def channels(self):
         return self._channels
 
-    def _velocity(self, body, medium, xy, u):
+    def _shapes(self, xy):
         d = self.sources[None, :, :] - xy[:, None, :]            # (n, K, 2)
-        shape = self.core * d / (np.sum(d * d, axis=2, keepdims=True) + self.core**2)
+        return self.core * d / (np.sum(d * d, axis=2, keepdims=True) + self.core**2)
+
+    def basis(self, bodies, medium, xy):
+        """Exact field basis in one vectorised pass (the generic one calls velocity K+1 times)."""
+        xy = self.check_points(xy)
+        if len(bodies) != len(xy):
+            raise ActuatorError(f"basis: {len(bodies)} bodies but {len(xy)} positions.")
+        for b in set(bodies):
+            self.check_body(b, medium)
+        mob = np.array([1.0 / drag_coefficient(b, medium) for b in bodies])      # (n,)
+        unit = self.force * self._shapes(xy) * mob[:, None, None]              # (n, K, 2) per unit gain
+        unit = np.transpose(unit, (1, 0, 2))                                   # (K, n, 2)
+        zero = np.zeros(xy.shape)
+        if self.affine:
+            return FieldBasis("linear", unit, zero, self.channels, idle=self.idle_input())
+        prims = self.primitives()
+        gains = np.array([np.asarray(p.values) * np.abs(p.values) for p in prims])   # (P, K)
+        fields = np.tensordot(gains, unit, axes=1)
+        return FieldBasis("timeshare", fields, zero, self.channels, primitives=prims, idle=self.idle_input())
+
+    def _velocity(self, body, medium, xy, u):
+        shape = self._shapes(xy)
         gain = u if self.affine else u * np.abs(u)
         f = self.force * np.einsum("k,nkd->nd", gain, shape)
         return f / drag_coefficient(body, medium)
