@@ -10,6 +10,10 @@ Schedules and limits
     Schedule, HardwareLimits, ChannelLimit
 Simulation
     Simulator, rollout, Rollout
+Planning (loaded on first use)
+    plan, PlanSettings, PlanResult, Controller, capability_curve, run_live, closed_loop, LiveResult
+Scenarios (loaded on first use)
+    load_scenario, run_scenario, write_outputs
 Errors
     FieldplanError, UnitError, ActuatorError, WorkspaceError, LimitError, ScenarioError
 
@@ -39,9 +43,28 @@ from .workspace import Workspace, circle, polygon, rectangle
 
 __version__ = "0.1.0"
 
+# The planner pulls in cvxpy/OSQP/networkx (about a second): load it on first use only.
+_LAZY = {
+    "plan": "plan", "PlanSettings": "plan", "PlanResult": "plan", "Controller": "plan",
+    "capability_curve": "plan", "run_live": "live", "closed_loop": "live", "LiveResult": "live",
+    "load_scenario": "scenario", "run_scenario": "compare", "write_outputs": "export",
+}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'fieldplan' has no attribute {name!r}")
+
 __all__ = [
     "to_si", "Medium", "water", "air", "Body", "Shell", "Workspace", "rectangle", "circle", "polygon",
     "Actuator", "Channel", "Primitive", "FieldBasis", "Segment", "TAGS", "load_actuator",
     "available_actuators", "Schedule", "HardwareLimits", "ChannelLimit", "Simulator", "rollout", "Rollout",
+    "plan", "PlanSettings", "PlanResult", "Controller", "capability_curve", "run_live", "closed_loop",
+    "LiveResult", "load_scenario", "run_scenario", "write_outputs",
     "FieldplanError", "UnitError", "ActuatorError", "WorkspaceError", "LimitError", "ScenarioError",
 ]
