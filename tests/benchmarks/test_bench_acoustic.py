@@ -15,19 +15,13 @@ import fieldplan
 from actuators.acoustic import Plate
 from actuators.plate_modes import plate_modes
 from fieldplan.actuator import Actuator
+from _timing import median_time
 
 AL = dict(youngs_modulus=69e9, poisson_ratio=0.33, density=2700.0)
 GRAIN = fieldplan.Body("sand", radius=2.5e-4, density=2600.0)
 BALL = fieldplan.Body("steel-ball", radius=1e-3, density=7800.0, drift_mobility=10.0)
 
 
-def median_time(fn, repeats):
-    times = []
-    for _ in range(repeats):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return float(np.median(times))
 
 
 def header():

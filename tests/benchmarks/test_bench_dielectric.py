@@ -23,16 +23,9 @@ from actuators import electrostatics as es
 from actuators.dielectric import ElectrodeArray, clausius_mossotti, dep_force
 from actuators.electrostatics import FloorSolver, Grid, SplineMaps, UnitResponses, pad_array
 from fieldplan.physics import drag_coefficient
+from _timing import timed as _median_time
 
 
-def _median_time(fn, repeats):
-    ts = []
-    out = None
-    for _ in range(repeats):
-        t = time.perf_counter()
-        out = fn()
-        ts.append(time.perf_counter() - t)
-    return float(np.median(ts)), out
 
 
 def _row(name, ours, base, base_name, target):

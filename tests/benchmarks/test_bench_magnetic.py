@@ -11,6 +11,7 @@ import numpy as np
 
 from actuators.magnetic import Coil, CoilArray
 from fieldplan import Body, water
+from _timing import median_time
 
 
 def eight_coils(tilt=0.0):
@@ -20,14 +21,6 @@ def eight_coils(tilt=0.0):
             for a in np.linspace(0, 2 * np.pi, 8, endpoint=False)]
 
 
-def median_time(fn, repeats=41):
-    fn()
-    times = []
-    for _ in range(repeats):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return float(np.median(times))
 
 
 def test_bench_basis_exact_vs_grid():

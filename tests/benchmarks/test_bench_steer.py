@@ -12,14 +12,17 @@ Median of repeats; times are not asserted, correctness is.
 
 from __future__ import annotations
 
-import statistics
-import time
 
 import numpy as np
 from scipy.optimize import linprog
 
 from fieldplan import Channel, FieldBasis, Primitive
 from fieldplan.steer import body_speeds, restrict, steerability
+from _timing import timed
+
+
+def _median_time(fn):
+    return timed(fn, REPEATS)
 
 REPEATS = 3
 NAIVE_DIRECTIONS = 200
@@ -53,13 +56,6 @@ def naive_speed(basis, directions, rng):
     return best
 
 
-def _median_time(fn):
-    times, out = [], None
-    for _ in range(REPEATS):
-        t = time.perf_counter()
-        out = fn()
-        times.append(time.perf_counter() - t)
-    return statistics.median(times), out
 
 
 def test_bench_steerability_vs_naive_directions():
