@@ -47,7 +47,8 @@ class LiveResult:
         :func:`closed_loop`: the same for the *true* positions.
     status : int
         0 success, 1 duration reached, 2 controller gave up (fruitless stall recoveries),
-        3 too many dropped frames in a row, 4 no route.
+        3 too many dropped frames in a row, 4 no route, 5 the applied schedule breaks a declared
+        hardware limit (see ``violations``; never a success).
     message : str
         Names every body that did not arrive and why.
     times : ndarray, shape (T,)
@@ -76,6 +77,8 @@ class LiveResult:
     time_to_goal : float
         s (NaN if never).
     notes : list of str
+    violations : list of str
+        Hardware-limit violations of ``schedule`` (empty when it passes ``schedule.check(limits)``).
     """
 
     success: bool
@@ -96,6 +99,7 @@ class LiveResult:
     metrics: dict = field(default_factory=dict)
     time_to_goal: float = float("nan")
     notes: list = field(default_factory=list)
+    violations: list = field(default_factory=list)
 
     def __repr__(self):
         return (f"LiveResult(success={self.success}, status={self.status}, message={self.message!r}, "
@@ -250,11 +254,17 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
     schedule = Schedule.from_segments(channels, segments) if segments else Schedule.empty(channels)
     final = est if est is not None else np.full((n, 2), np.nan)
     reasons = controller.body_reasons(final) if controller.ready else ["no usable observation"] * n
+    viol = [v[0] for v in schedule.violations(controller.limits)] if segments else []
     if status == 0:
         message = f"all {n} bodies reached their goals in {t - t0:.4g} s ({len(step_times)} periods, {dropped} dropped)"
     else:
         missed = [f"body {i} ({b.name}): {r}" for i, (b, r) in enumerate(zip(controller.bodies, reasons)) if r]
         message = "; ".join([head or "not all bodies arrived"] + missed)
+    if viol:
+        # What was played broke a declared limit: never a success, and the message says which.
+        more = f" (and {len(viol) - 1} more)" if len(viol) > 1 else ""
+        message = f"the applied schedule breaks a declared hardware limit: {viol[0]}{more}; " + message
+        status = 5
     err = np.linalg.norm(final - controller.goals, axis=1)
     report = [{"index": i, "name": b.name, "reached": bool(err[i] <= controller.tolerance[i]),
                "final_error": float(err[i]), "reason": reasons[i]} for i, b in enumerate(controller.bodies)]
@@ -263,7 +273,7 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
     return LiveResult(status == 0, status, message, times, positions, schedule, step_times,
                       list(controller.stalls), dropped, list(getattr(controller, "routes", [])),
                       controller.goals.copy(), report, positions.copy(), times.copy(),
-                      notes=list(controller.notes))
+                      notes=list(controller.notes), violations=viol)
 
 
 def _idle_values(controller):
@@ -355,7 +365,8 @@ def closed_loop(model, truth, bodies, workspace, starts, goals, *, limits=None, 
                   for i, b in enumerate(bodies) if final_err[i] > tol[i]]
         msg = "the estimates arrived but " + "; ".join(missed)
     status = res.status if truth_ok or res.status != 0 else 1
+    truth_ok = truth_ok and not res.violations
     return LiveResult(truth_ok, 0 if truth_ok else status, msg, times, pos, res.schedule, res.step_times,
                       res.stalls, res.dropped, res.routes, res.goals, res.bodies_report, res.estimates,
                       res.estimate_times, list(sim.events), metrics, float(metrics.get("time_to_goal", np.nan)),
-                      res.notes)
+                      res.notes, list(res.violations))

@@ -435,6 +435,10 @@ class Controller:
             # A window that is a whole number of periods makes the per-period RMS budget exact; with
             # a hardware step the period must also be a whole number of steps.
             W = min(windows)
+            if self.mode == "timeshare":
+                # Primitives play at full value within a period, so the mix only averages out over
+                # windows several periods long: keep four periods or more per window.
+                T = max(min(T, W / 4.0), max(dwell))
             if W >= T:
                 m0 = int(np.ceil(W / T))
                 for m in range(m0, m0 + 50):
@@ -478,11 +482,22 @@ class Controller:
             if cl.rms is None:
                 continue
             W = cl.rms_window
-            # Window W spans at most g = ceil(W / T) periods; T * (sum of g mean squares) bounds its
-            # integral, so sum <= rms^2 W / T is sufficient (exact when W is a multiple of T, which
-            # the automatic period arranges). A window within one period needs only q <= rms^2.
-            g = None if W is None else max(1, int(np.ceil(W / T - 1e-9)))
-            total = None if W is None else (float(cl.rms) ** 2 * (W / T if g > 1 else 1.0))
+            # Trailing-window budget, checked every period over the last g periods (this one
+            # included): sum of per-period mean squares <= total. In linear mode the input is
+            # constant over a period, so the windowed integral is piecewise linear in the window's
+            # start and peaks with one end on a period edge; such a window lies within
+            # g = ceil(W / T) periods, and T * (their sum) <= rms^2 W bounds every sliding window
+            # (exact when W is a multiple of T, which the automatic period arranges). A window
+            # shorter than a period then needs only q <= rms^2. In timeshare mode the values change
+            # within a period, so a window may catch the loud parts of both end periods: it touches
+            # at most ceil(W / T) + 1 periods, and the same integral bound over those is sufficient.
+            if W is None:
+                g, total = None, None
+            else:
+                g = max(1, int(np.ceil(W / T - 1e-9)))
+                if self.mode == "timeshare":
+                    g += 1
+                total = float(cl.rms) ** 2 * (W / T if g > 1 else 1.0)
             # With a slew limit a budget that shrinks faster than the input may ramp down cannot be
             # met, so such channels are held at their sustainable level instead.
             capped = self.mode == "linear" and self._slew is not None and np.isfinite(self._slew[j])
@@ -494,6 +509,8 @@ class Controller:
         lo1, hi1 = self._lo.copy(), self._hi.copy()
         rows, rhs0, rhs1 = [], [], []
         hist = np.asarray(self._sq_hist) if self._sq_hist else np.zeros((0, len(self.channels)))
+        budgets = []
+        self._budgets = budgets         # this period's mean-square budget per RMS channel, unit^2
         for j, rms, g, total, capped in self._rms:
             # The whole schedule so far must stay within the limit too (a plan shorter than the
             # window is judged on its whole length).
@@ -504,6 +521,7 @@ class Controller:
             if capped:
                 budget = rms**2
             budget = max(budget, 0.0)
+            budgets.append((j, budget))
             if self.mode == "linear":
                 b = np.sqrt(budget) / self._scale[j]
                 lo0[j], hi0[j] = max(lo0[j], -b), min(hi0[j], b)
@@ -710,7 +728,7 @@ class Controller:
         if sol.info.get("bound_clash"):
             self.notes.append(f"t = {t:.4g} s: RMS budget and slew limit clash on channels "
                               f"{[self.channels[k].name for k in sol.info['bound_clash']]}; slewed as far as allowed")
-        segs = self._segments(rate, t)
+        segs = self._fit_rms(rate, t)
         # Planned progress: the predicted displacement along each body's route step (the progress
         # variable itself overstates it when the tracking cannot follow).
         stepn = np.linalg.norm(steps[0], axis=1)
@@ -1083,6 +1101,57 @@ class Controller:
             segs = fixed
         return segs
 
+    def _mean_squares(self, segs):
+        """Mean square of each channel over one period of ``segs``, unit^2, shape (m,)."""
+        sq = np.zeros(len(self.channels))
+        for sg in segs:
+            sq += np.asarray(sg.values, dtype=float) ** 2 * sg.duration
+        return sq / self.period
+
+    def _fit_rms(self, rate, t):
+        """Segments of ``rate`` that keep this period within every RMS budget.
+
+        The step program meets the budgets only to solver tolerance, and in timeshare mode rounding
+        the slices to the hardware step (with error diffusion) may play a little more of a loud
+        primitive than planned; either could push a sliding window over its limit. Here the played
+        mean squares are checked against the budgets and, where one is exceeded, the loudest
+        contributing primitive is shortened (timeshare) or the channel scaled back (linear) until
+        it fits.
+        """
+        q_res = self._q_res.copy()
+        segs = self._segments(rate, t)
+        if not self._rms:
+            return segs
+        budgets = getattr(self, "_budgets", [])
+        rate = np.array(rate, dtype=float)
+        ts = self.limits.time_step if self.limits is not None else None
+        for _ in range(4 * self.K + 20):
+            q = self._mean_squares(segs)
+            over = [(j, q[j] - b) for j, b in budgets if q[j] > b * (1 + 1e-12) + 1e-300]
+            if not over:
+                return segs
+            j, excess = max(over, key=lambda e: e[1] / max(q[e[0]], 1e-300))
+            if self.mode == "linear":
+                # Round-off only (the rates are clipped to the budget's box): scale the channel back.
+                b = dict(budgets)[j]
+                u = rate[j] * self._scale[j]
+                rate[j] = np.sign(u) * np.sqrt(b) / self._scale[j] * (1 - 1e-12)
+            else:
+                coef = self._prims[:, j] ** 2 - self._idle_values[j] ** 2
+                cand = np.flatnonzero((coef > 0) & (rate > 0))
+                if not len(cand):
+                    break
+                k = cand[np.argmax(coef[cand])]
+                cut = excess / coef[k]
+                if ts:
+                    cut = max(cut, ts / self.period)
+                rate[k] = max(rate[k] - cut * (1 + 1e-9), 0.0)
+            self._q_res = q_res.copy()
+            segs = self._segments(rate, t)
+        self.notes.append(f"t = {t:.4g} s: could not fit the period's input within the RMS budget of channel "
+                          f"{self.channels[over[0][0]].name!r}")
+        return segs
+
     def _prim_objs(self):
         if not hasattr(self, "_prim_cache"):
             self._prim_cache = tuple(self.actuator.primitives())
@@ -1091,11 +1160,7 @@ class Controller:
     def _record_rms(self, segs):
         if not self._rms:
             return
-        T = self.period
-        sq = np.zeros(len(self.channels))
-        for sg in segs:
-            sq += np.asarray(sg.values) ** 2 * sg.duration
-        self._sq_hist.append(sq / T)
+        self._sq_hist.append(self._mean_squares(segs))
 
     def predict(self, positions, segments, substeps=4):
         """Positions after ``segments`` on the model (classical RK4, no noise), m, shape (n, 2).
@@ -1170,7 +1235,8 @@ class PlanResult:
     success : bool
         Every body within tolerance of its goal at the same time.
     status : int
-        0 success, 1 time or step limit, 2 gave up after fruitless stall recoveries, 3 no route.
+        0 success, 1 time or step limit, 2 gave up after fruitless stall recoveries, 3 no route,
+        4 the schedule breaks a declared hardware limit (see ``violations``; never a success).
     message : str
         Names every body that did not arrive and why.
     schedule : Schedule
@@ -1326,6 +1392,13 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
     report = [{"index": i, "name": b.name, "reached": bool(err[i] <= ctrl.tolerance[i]), "final_error": float(err[i]),
                "reason": reasons[i], "route_length": float(ctrl.route_lengths[i])} for i, b in enumerate(bodies)]
     viol = [v[0] for v in schedule.violations(limits)] if (limits is not None and segments) else []
+    if viol:
+        # Last line of defence: a schedule the hardware must refuse is never reported as a success.
+        success = False
+        status = 4
+        more = f" (and {len(viol) - 1} more)" if len(viol) > 1 else ""
+        message = f"the schedule breaks a declared hardware limit: {viol[0]}{more}; " + message
+        report = [dict(r, reason=r["reason"] or "the schedule breaks a declared hardware limit") for r in report]
     max_slack = max([r["max_slack"] for r in ctrl.records], default=0.0)
     return PlanResult(success, status, message, schedule, ctrl.routes, times, pos, report, step_times,
                       list(ctrl.stalls), T, ctrl.goals.copy(), metrics, viol, list(ctrl.notes), max_slack)
