@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 
 from fieldplan import Body, FieldplanError, Workspace, WorkspaceError, rectangle
+from fieldplan.live import closed_loop
 from fieldplan.plan import Controller, PlanSettings, capability_curve, plan
 from fieldplan.routes import route_length
 from fieldplan.schedule import ChannelLimit, HardwareLimits
@@ -210,3 +211,45 @@ def test_capability_curve_counts_successes():
     assert set(out) == {1, 2}
     assert out[1]["success_rate"] == 1.0 and out[1]["time_to_goal"] > 0
     assert 0.0 <= out[2]["success_rate"] <= 1.0 and len(out[2]["messages"]) == 2
+
+
+@pytest.mark.parametrize("affine", [True, False], ids=["linear", "timeshare"])
+@pytest.mark.parametrize("window_periods,fixed_period", [(2.5, False), (1.7, True), (0.6, True)],
+                         ids=["auto-period", "window-not-a-multiple", "window-shorter-than-period"])
+def test_sliding_window_rms_limit_is_never_broken(affine, window_periods, fixed_period):
+    """A tight RMS limit over a sliding window (any start time, as Schedule.violations checks it)
+    holds for open-loop plans and closed-loop runs alike, also when the window is not a whole
+    number of periods or is shorter than one (timeshare mode plays primitives at full value, so a
+    short window sees the loud slices). Coil heating goes with the mean of I^2 over the thermal
+    time constant (common practice, no source)."""
+    act = grid_sources(3, affine=affine)
+    start, goal = [[3e-4, 3e-4]], [[7e-4, 6e-4]]
+    T0 = plan(act, [BEAD], WS, start, goal).period
+    lim = HardwareLimits({c.name: ChannelLimit(rms=0.5, rms_window=window_periods * T0) for c in act.channels},
+                         time_step=0.01)
+    settings = PlanSettings(period=T0 if fixed_period else None)
+    free = plan(act, [BEAD], WS, start, goal, settings=settings)
+    assert free.schedule.rms(window_periods * T0).max() > 0.5        # the limit binds
+    res = plan(act, [BEAD], WS, start, goal, limits=lim, settings=settings)
+    assert res.success, res.message
+    assert res.schedule.violations(lim) == [] and res.violations == []
+    live = closed_loop(act, act, [BEAD], WS, start, goal, limits=lim, settings=settings, rng=0)
+    assert live.success, live.message
+    assert live.schedule.violations(lim) == [] and live.violations == []
+
+
+def test_a_limit_breaking_schedule_is_never_a_success(monkeypatch):
+    """The final guard: with the controller's RMS budgets switched off, the plan reaches its goal
+    but breaks the declared limit, and plan() says so instead of returning a success."""
+    lim = HardwareLimits({f"source_{k + 1}": ChannelLimit(rms=0.3, rms_window=5.0) for k in range(16)})
+    original = Controller._setup_limits
+
+    def without_rms(self):
+        original(self)
+        self._rms = []
+
+    monkeypatch.setattr(Controller, "_setup_limits", without_rms)
+    res = plan(ACT, [BEAD], WS, [[3e-4, 3e-4]], [[7e-4, 6e-4]], limits=lim)
+    assert not res.success and res.status == 4
+    assert res.violations and "RMS" in res.violations[0]
+    assert "breaks a declared hardware limit" in res.message
