@@ -137,7 +137,7 @@ def build_parser():
             `actuator: {type: calibrated, path: <folder>/<name>.json}`) with a report and plots.
             """,
             """
-            fieldplan fit scenarios/data/tracks-demo.csv --out calib --idle off
+            fieldplan fit scenarios/calibration/tracks.csv --out calib
             fieldplan fit tracks.csv --out calib --name dish3 --primitives coil_1+,coil_2+ --units x=um,y=um
             """)
     f.add_argument("tracks", help="tracking CSV (layout in fieldplan.tracking)")

@@ -43,9 +43,11 @@ def load_actuator_class(name):
     if ":" in name:
         module, _, attr = name.partition(":")
         try:
-            mod = importlib.import_module(module)
+            mod = _import_user_module(module)
         except ImportError as exc:
-            raise ActuatorError(f"actuator {name!r}: cannot import module {module!r} ({exc}).") from exc
+            raise ActuatorError(
+                f"actuator {name!r}: cannot import module {module!r} ({exc}). The module must be installed "
+                "or importable from the current folder (or a folder on PYTHONPATH).") from exc
         try:
             obj = getattr(mod, attr)
         except AttributeError:
@@ -56,6 +58,25 @@ def load_actuator_class(name):
     close = difflib.get_close_matches(name, list(eps), n=1)
     hint = f" Did you mean {close[0]!r}?" if close else ""
     raise ActuatorError(f"unknown actuator {name!r}; registered: {sorted(eps)}, or give 'module:Class'.{hint}")
+
+
+def _import_user_module(module):
+    # A user's own model usually sits beside their scenario, in the folder they run from: look there
+    # too, as `python -m` would, without leaving the folder on sys.path afterwards.
+    import os
+    import sys
+
+    try:
+        return importlib.import_module(module)
+    except ImportError:
+        cwd = os.getcwd()
+        if cwd in sys.path:
+            raise
+        sys.path.insert(0, cwd)
+        try:
+            return importlib.import_module(module)
+        finally:
+            sys.path.remove(cwd)
 
 
 def load_actuator(name, **params):

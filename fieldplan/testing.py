@@ -17,15 +17,15 @@ from .actuator import TAGS, Actuator, Channel, FieldBasis, Primitive
 from .errors import ActuatorError
 from .physics import drag_coefficient
 
-__all__ = ["check_actuator", "SourceArray"]
+__all__ = ["check_actuator", "ContractError", "SourceArray"]
 
 
-class _Fail(AssertionError):
-    pass
+class ContractError(AssertionError):
+    """An actuator broke the contract; the message names the check (``check_actuator[<check>]``)."""
 
 
 def _fail(check, actuator, message):
-    raise _Fail(f"check_actuator[{check}] {type(actuator).__name__}: {message}")
+    raise ContractError(f"check_actuator[{check}] {type(actuator).__name__}: {message}")
 
 
 def _random_inputs(actuator, rng, n):
@@ -42,7 +42,9 @@ def _random_inputs(actuator, rng, n):
 
 
 def check_actuator(actuator, bodies, medium, points=None, rng=0, n_points=24, rtol=1e-7):
-    """Run the actuator contract suite; raise ``AssertionError`` naming the first failed check.
+    """Run the actuator contract suite; raise :class:`ContractError` naming the first failed check.
+
+    Returns ``None`` when every check passes, so it reads as an assertion in a user's own tests.
 
     Parameters
     ----------

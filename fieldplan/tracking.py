@@ -817,7 +817,7 @@ def velocity_samples(data, *, window=9, polyorder=2, stride=None, warn=True):
             issues.append(TrackIssue(
                 "short", str(data.track[i]), float(data.time[i]), int(data.line[i]) or None,
                 f"segment of {L} frame(s) under {str(data.primitive[i])!r} is too short for a derivative "
-                f"(needs >= {min_frames}); dropped"))
+                f"(the Savitzky-Golay window must be odd and >= {min_frames} frames; {L} frame(s) allow {w}); dropped"))
             continue
         t = data.time[sl]
         dt = float(np.mean(np.diff(t)))
