@@ -506,15 +506,18 @@ def _cmd_fit(args):
             units[k.strip()] = u.strip()
     prims = [p.strip() for p in args.primitives.split(",")] if args.primitives else None
     rep = calibrate_command(args.tracks, args.out, primitives=prims, units=units, idle=args.idle, name=args.name,
-                            plots=not args.no_plots)
+                            plots=not args.no_plots, warn=False)
     from .compare import format_si  # noqa: PLC0415
 
+    for w in rep.get("warnings", []):
+        _say(args, f"warning: {w}", err=True)
     for row in rep.get("fields", [])[:40]:
         cv, rel = row.get("cv_rmse_m_per_s"), row.get("cv_relative")
         _say(args, f"  {row.get('kind', '?')} / {row.get('primitive', '?')}: {row.get('n_samples', '?')} samples, "
                    f"cross-validated error {format_si(cv, 'm/s')}"
                    + (f" ({100 * rel:.0f} % of the RMS speed)" if isinstance(rel, float) else ""))
     _say(args, f"calibrated actuator: {rep['actuator']}", f"report: {rep['report']}",
+         *[f"plot: {p}" for p in (rep.get("plots") or {}).values()],
          f"use it in a scenario as: actuator: {{type: calibrated, path: {rep['actuator']}}}")
     return EXIT_OK
 
