@@ -236,57 +236,245 @@ def plot_timeline(times, positions, goals, bodies, *, tolerance=None, predicted=
     return fig
 
 
+_DENSE = 150          # more segments than this: draw per-bin summaries, not every switch
+_BINS = 160           # bins across the schedule when summarising
+_STYLES = ("-", "--", "-.", ":")
+_MARKERS = ("o", "s", "^", "v", "D", "P", "X", "<", ">", "*")
+
+
+def _short_label(name):
+    """Primitive label with its numbers at 3 significant digits ("420.666Hz@8.707V" -> "421 Hz @ 8.71 V")."""
+    import re  # noqa: PLC0415
+
+    def num(m):
+        v, u = float(m.group(1)), m.group(2) or ""
+        if u == "Hz":
+            for f, pre in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+                if v >= f:
+                    v, u = v / f, pre + u
+                    break
+        return f"{v:.3g}" + (f" {u}" if u else "")
+
+    out = re.sub(r"(?<![\w.])(\d+(?:\.\d+)?(?:e[+-]?\d+)?)(Hz|kHz|MHz|V|mV|A|mA|T|mT)?(?![\w.])", num, name)
+    return out.replace("@", " @ ")
+
+
+def _bin_average(starts, durations, values, edges):
+    """Time-weighted mean of a piecewise-constant signal over each bin, shape (nb, m)."""
+    # The running integral is piecewise linear, so interpolating it at the bin edges is exact.
+    ends = starts + durations
+    knots = np.r_[starts, ends]
+    order = np.argsort(knots, kind="stable")
+    cum = np.vstack([np.zeros((1, values.shape[1])), np.cumsum(values * durations[:, None], axis=0)])
+    # Integral at each segment start is cum[k], at each end cum[k+1]; merge both sets of knots.
+    kv = np.vstack([cum[:-1], cum[1:]])[order]
+    kt = knots[order]
+    F = np.column_stack([np.interp(edges, kt, kv[:, j]) for j in range(values.shape[1])])
+    return np.diff(F, axis=0) / np.diff(edges)[:, None]
+
+
+def _bin_range(starts, durations, values, edges):
+    """Smallest and largest value played in each bin, shapes (nb, m); nan where nothing played."""
+    ends = starts + durations
+    nb = len(edges) - 1
+    lo = np.full((nb, values.shape[1]), np.nan)
+    hi = np.full_like(lo, np.nan)
+    i0 = np.searchsorted(ends, edges[:-1], side="right")
+    i1 = np.searchsorted(starts, edges[1:], side="left")
+    for j in range(nb):  # a loop over ~160 bins, not over points
+        if i1[j] > i0[j]:
+            lo[j] = values[i0[j]:i1[j]].min(axis=0)
+            hi[j] = values[i0[j]:i1[j]].max(axis=0)
+    return lo, hi
+
+
+def _hz_axis(ax, lo, hi):
+    from matplotlib.ticker import EngFormatter  # noqa: PLC0415
+
+    if lo > 0 and hi / lo > 10:
+        ax.set_yscale("log")
+    ax.yaxis.set_major_formatter(EngFormatter(unit="Hz"))
+
+
+def _limit_lines(ax, lim, colour, unit, first):
+    """Dashed lines at the declared bounds; dash-dot at +-RMS. Returns legend handles added."""
+    for val in (lim.lower, lim.upper):
+        if val is not None:
+            ax.axhline(val, color=colour, ls="--", lw=0.7, alpha=0.8)
+    if lim.rms is not None:
+        win = f", {lim.rms_window:g} s window" if lim.rms_window else ""
+        for s in (-1, 1):
+            ax.axhline(s * lim.rms, color=colour, ls="-.", lw=0.7, alpha=0.8)
+        return f"RMS limit {lim.rms:g} {unit}{win}"
+    return None
+
+
 def plot_inputs(schedule, *, limits=None):
     """Channel values over time, one panel per unit, with the declared limits as dashed lines.
+
+    Short schedules are drawn as step lines, one style and marker per channel so equal channels stay
+    visible. Long schedules (more than 150 segments, switching far faster than a figure can show) are
+    summarised per time bin: the time-weighted mean of each channel as a colour raster (several
+    channels) or as a line with the min-max range shaded (one or two channels); channels that take
+    only a few discrete values (tones) show the fraction of each bin spent on each value.
 
     Parameters
     ----------
     schedule : Schedule
     limits : HardwareLimits, optional
+        Bounds drawn dashed, RMS limits dash-dotted (lines only; a colour raster names them in its
+        colour-bar label).
 
     Returns
     -------
     matplotlib.figure.Figure
     """
-    units = []
-    for c in schedule.channels:
-        if c.unit not in units:
-            units.append(c.unit)
-    # Time-shared primitives (tones, current patterns) read better as a raster of which one played.
+    from matplotlib.lines import Line2D  # noqa: PLC0415
+
+    chans = list(schedule.channels)
+    starts = np.asarray(schedule.starts, dtype=float)
+    durs = np.asarray(schedule.durations, dtype=float)
+    vals = np.asarray(schedule.values, dtype=float)
+    t0, t1 = float(starts[0]), float(schedule.end)
+    dense = schedule.n_segments > _DENSE
+    units = list(dict.fromkeys(c.unit for c in chans))
+    # A channel with few distinct values (a tone selector) reads better as "which value, how often".
+    discrete = {}
+    if dense:
+        for k, c in enumerate(chans):
+            u = np.unique(vals[:, k])
+            if 1 < len(u) <= 6 and len(chans) > 1 and sum(ch.unit == c.unit for ch in chans) == 1:
+                discrete[k] = u
     names = [lab for lab in dict.fromkeys(schedule.labels) if lab and lab != "mix"]
     raster = 1 < len(names) <= 40
-    panels = len(units) + (1 if raster else 0)
-    fig = _figure(figsize=(7.5, 1.2 + 2.2 * len(units) + (0.18 * len(names) + 0.8 if raster else 0)),
-                  layout="constrained")
-    axes = np.atleast_1d(fig.subplots(panels, 1, sharex=True, squeeze=False)[:, 0])
+    panels = []  # (kind, payload, height)
+    for unit in units:
+        ks = [k for k, c in enumerate(chans) if c.unit == unit and k not in discrete]
+        if ks and dense and len(ks) >= 3:
+            panels.append(("heat", (unit, ks), max(1.6, 0.22 * len(ks) + 0.6)))
+        elif ks and len(ks) >= 4:
+            # Small multiples: four or more step lines on one axis hide each other where they coincide.
+            panels += [("lines", (unit, [k]), 1.05) for k in ks]
+        elif ks:
+            panels.append(("lines", (unit, ks), 2.2))
+    for k, u in discrete.items():
+        panels.append(("tones", (k, u), 0.3 * len(u) + 0.9))
     if raster:
-        ax = axes[-1]
-        for i, name in enumerate(names):
-            spans = [(t, d) for t, d, lab in zip(schedule.starts, schedule.durations, schedule.labels) if lab == name]
-            ax.broken_barh(spans, (i - 0.4, 0.8), color="0.3" if name == "idle" else f"C{i % 10}")
-        ax.set_yticks(range(len(names)), names, fontsize=6)
-        ax.set_ylim(-0.6, len(names) - 0.4)
-        ax.set_ylabel("primitive played")
-        ax.grid(axis="x", alpha=0.3)
-        axes = axes[:-1]
-    t = np.append(schedule.starts, schedule.end)
-    for ax, unit in zip(axes, units):
-        for k, c in enumerate(schedule.channels):
-            if c.unit != unit:
+        panels.append(("raster", names, 0.17 * len(names) + 0.8))
+    fig = _figure(figsize=(8.6, 0.9 + sum(p[2] for p in panels)), layout="constrained")
+    axes = np.atleast_1d(fig.subplots(len(panels), 1, sharex=True, squeeze=False,
+                                      gridspec_kw={"height_ratios": [p[2] for p in panels]})[:, 0])
+    edges = np.linspace(t0, t1, _BINS + 1) if dense else None
+    width = (t1 - t0) / _BINS
+    wlab = f"{width * 1e3:.3g} ms" if width < 1 else f"{width:.3g} s"
+    t = np.append(starts, t1)
+    for ax, (kind, payload, _) in zip(axes, panels):
+        if kind in ("lines", "heat"):
+            unit, ks = payload
+            shown = "dimensionless" if unit in ("1", "") else unit
+            if kind == "heat":
+                mean = _bin_average(starts, durs, vals[:, ks], edges)
+                lo = [c.lower for c in (chans[k] for k in ks) if np.isfinite(c.lower)]
+                hi = [c.upper for c in (chans[k] for k in ks) if np.isfinite(c.upper)]
+                vmax = max([abs(v) for v in lo + hi] or [float(np.nanmax(np.abs(mean))) or 1.0])
+                signed = bool(lo) and min(lo) < 0
+                img = ax.imshow(mean.T, aspect="auto", origin="lower", interpolation="nearest",
+                                extent=(t0, t1, -0.5, len(ks) - 0.5), cmap="RdBu_r" if signed else "viridis",
+                                vmin=-vmax if signed else 0.0, vmax=vmax)
+                fig.colorbar(img, ax=ax, pad=0.01, label=f"mean per {wlab} [{shown}]")
+                ax.set_yticks(range(len(ks)), [chans[k].name for k in ks], fontsize=7)
+                ax.set_ylabel("channel")
                 continue
-            v = np.append(schedule.values[:, k], schedule.values[-1, k])
-            line, = ax.step(t, v, where="post", lw=1.0, label=c.name)
+            handles, notes = [], []
+            single = len(ks) == 1 and sum(ch.unit == unit for ch in chans) >= 4
+            for j, k in enumerate(ks):
+                c = chans[k]
+                colour = f"C{k % 10}"
+                if dense:
+                    mean = _bin_average(starts, durs, vals[:, [k]], edges)[:, 0]
+                    lo, hi = _bin_range(starts, durs, vals[:, [k]], edges)
+                    ax.fill_between(edges, np.append(lo[:, 0], lo[-1, 0]), np.append(hi[:, 0], hi[-1, 0]),
+                                    step="post", color=colour, alpha=0.2, lw=0)
+                    ax.step(edges, np.append(mean, mean[-1]), where="post", lw=1.0, color=colour)
+                    handles.append(Line2D([], [], color=colour, lw=1.0, label=f"{c.name}: mean per {wlab}"))
+                    handles.append(__import__("matplotlib.patches", fromlist=["Patch"]).Patch(
+                        color=colour, alpha=0.2, label=f"{c.name}: min-max per {wlab}"))
+                else:
+                    # Equal channels overlap exactly: vary width, dash and marker so each stays visible.
+                    ls, mk = _STYLES[j % len(_STYLES)], _MARKERS[j % len(_MARKERS)]
+                    lw = 2.6 - 1.6 * j / max(len(ks) - 1, 1)
+                    v = np.append(vals[:, k], vals[-1, k])
+                    if single:
+                        ax.step(t, v, where="post", lw=1.4, color=colour)
+                        handles.append(Line2D([], [], color=colour, lw=1.4, label=c.name))
+                    else:
+                        ax.step(t, v, where="post", lw=lw, ls=ls, color=colour, alpha=0.85)
+                        mid = starts + durs / 2
+                        every = max(1, len(mid) // 12)
+                        ax.plot(mid[j % every::every], vals[j % every::every, k], ls="none", marker=mk, ms=4,
+                                color=colour, mfc="none" if j % 2 else colour)
+                        handles.append(Line2D([], [], color=colour, lw=lw, ls=ls, marker=mk, ms=4,
+                                              mfc="none" if j % 2 else colour, label=c.name))
+                if limits is not None:
+                    note = _limit_lines(ax, limits.get(c.name), colour, shown, j == 0)
+                    if note and note not in notes:
+                        notes.append(note)
             if limits is not None:
-                lim = limits.get(c.name)
-                for val in (lim.lower, lim.upper):
-                    if val is not None:
-                        ax.axhline(val, color=line.get_color(), ls="--", lw=0.6)
-        shown = "" if unit in ("1", "") else f" [{unit}]"
-        ax.set_ylabel(f"value{shown}" if shown else "value [dimensionless]")
-        ax.grid(alpha=0.3)
-        ax.legend(fontsize=7, loc="upper right", ncol=min(4, len(schedule.channels)))
-    fig.axes[-1].set_xlabel("time [s]")
-    axes[0].set_title("inputs (dashed: declared limits)")
+                handles.append(Line2D([], [], color="0.3", ls="--", lw=0.7, label="declared bounds"))
+                handles += [Line2D([], [], color="0.3", ls="-.", lw=0.7, label=n) for n in notes]
+            if unit == "Hz":
+                lo = float(np.nanmin(vals[:, ks]))
+                _hz_axis(ax, lo, float(np.nanmax(vals[:, ks])))
+                ax.set_ylabel("frequency")
+            else:
+                ax.set_ylabel(f"{chans[ks[0]].name}\n[{shown}]" if single else f"value [{shown}]",
+                              fontsize=8 if single else None)
+            if single:
+                handles = handles[1:]
+                if ks[0] != next(k for k, ch in enumerate(chans) if ch.unit == unit):
+                    handles = []
+            if handles:
+                ax.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0),
+                          frameon=False, ncol=1 if len(handles) <= 10 else 2)
+            ax.grid(alpha=0.3)
+        elif kind == "tones":
+            k, u = payload
+            c = chans[k]
+            ind = (vals[:, [k]] == u[None, :]).astype(float)
+            duty = _bin_average(starts, durs, ind, edges)
+            img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
+                            extent=(t0, t1, -0.5, len(u) - 0.5), cmap="Greys", vmin=0.0, vmax=1.0)
+            fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab}")
+            if c.unit == "Hz":
+                from matplotlib.ticker import EngFormatter  # noqa: PLC0415
+
+                labs = [EngFormatter(unit="Hz", places=0)(x) for x in u]
+            else:
+                labs = [f"{x:.3g} {c.unit}" for x in u]
+            ax.set_yticks(range(len(u)), labs, fontsize=7)
+            ax.set_ylabel(f"{c.name} played")
+        else:
+            ax.tick_params(axis="y", labelsize=7)
+            if dense:
+                lab = np.asarray(schedule.labels, dtype=object)
+                ind = np.column_stack([(lab == n).astype(float) for n in payload])
+                duty = _bin_average(starts, durs, ind, edges)
+                img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
+                                extent=(t0, t1, -0.5, len(payload) - 0.5), cmap="Greys", vmin=0.0, vmax=1.0)
+                fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab}")
+            else:
+                for i, name in enumerate(payload):
+                    spans = [(s, d) for s, d, lab in zip(starts, durs, schedule.labels) if lab == name]
+                    ax.broken_barh(spans, (i - 0.4, 0.8), color="0.3" if name == "idle" else f"C{i % 10}")
+            ax.set_yticks(range(len(payload)), [_short_label(n) for n in payload], fontsize=7)
+            ax.set_ylim(-0.6, len(payload) - 0.4)
+            ax.set_ylabel("primitive played")
+            ax.grid(axis="x", alpha=0.3)
+    has_rms = limits is not None and any(limits.get(c.name).rms is not None for c in chans)
+    axes[-1].set_xlabel("time [s]")
+    axes[-1].set_xlim(t0, t1)
+    axes[0].set_title("inputs" + (f" ({schedule.n_segments} segments, summarised per {wlab} bin)" if dense
+                                  else " (dashed: declared bounds" + ("; dash-dot: ±RMS limit)" if has_rms else ")")))
     return fig
 
 
