@@ -264,3 +264,19 @@ def test_more_coils_steer_more_bodies_plan():
         print(f"\nK = {k} coils, 3 bodies: plan success {res.success}, time to goal "
               f"{res.metrics.get('time_to_goal', np.nan):.3g} s")
     assert ok == {4: False, 6: True, 8: True}, ok
+
+
+@pytest.mark.slow
+def test_model_mismatch_over_seeds():
+    """The mismatch case over several Brownian/tracking seeds (2 by default, 10 with FIELDPLAN_FULL=1):
+    closed loop arrives every time, with no contact."""
+    model = CoilArray(coil_ring(6), 0.0, bead_models="fixed")
+    truth = CoilArray(coil_ring(6, core_gain=1.1, shift_first=(0.5e-3, 0.0)), 0.0, bead_models="fixed")
+    lim = coil_limits(model)
+    errs = []
+    for seed in range(10 if FULL else 2):
+        res = closed_loop(model, truth, [UP, DOWN], COIL_WS, COIL_STARTS[:2], COIL_GOALS[:2], limits=lim,
+                          settings=COIL_SETTINGS, rng=100 + seed, brownian=True, tracking_noise=TRACKING)
+        check_run(res, lim, COIL_TOL)
+        errs.append(float(np.max(res.metrics["final_error"])))
+    print(f"\nmismatch closed loop over {len(errs)} seeds: worst final error {max(errs) * 1e6:.0f} um")
