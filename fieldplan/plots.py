@@ -47,7 +47,7 @@ def save(fig, path, dpi=120):
     return path
 
 
-def speed_backdrop(actuator, body, medium, workspace, n=48):
+def speed_backdrop(actuator, body, medium, workspace, n=48, radius=None):
     """Fastest speed one body reaches under any single primitive, on a grid.
 
     Parameters
@@ -58,6 +58,9 @@ def speed_backdrop(actuator, body, medium, workspace, n=48):
     workspace : Workspace
     n : int
         Grid points along the longer side.
+    radius : float, optional
+        Clearance from walls and obstacles, m (default the body's radius: the free space of its
+        centre; 0 fills the field up to the solid edges, which is how a backdrop should look).
 
     Returns
     -------
@@ -74,15 +77,42 @@ def speed_backdrop(actuator, body, medium, workspace, n=48):
     ys = ymin + (np.arange(ny) + 0.5) * h / ny
     X, Y = np.meshgrid(xs, ys)
     xy = np.c_[X.ravel(), Y.ravel()]
-    free = workspace.contains(xy, body.radius)
+    if radius is None:
+        free = workspace.contains(xy, body.radius)
+    else:
+        # Ignore the obstacles (drawn over the field) and pad the wall by a cell and a half, so an
+        # image clipped to the wall has no blank cells along its edges.
+        import shapely  # noqa: PLC0415
+
+        pad = 1.5 * max(w / nx, h / ny)
+        free = shapely.contains_xy(workspace.boundary.buffer(pad - float(radius)), xy[:, 0], xy[:, 1])
     speed = np.full(len(xy), np.nan)
     if free.any():
         pts = xy[free]
         idle = actuator.idle_input()
         best = np.linalg.norm(actuator.velocity(body, medium, pts, idle), axis=1)
-        for p in actuator.primitives():
-            v = np.linalg.norm(actuator.velocity(body, medium, pts, p.values), axis=1)
-            best = np.maximum(best, v)
+        prims = list(actuator.primitives())
+        chans = actuator.channels
+        if "affine_in_input" in actuator.tags and len(prims) > len(chans) + 1:
+            # Affine in the input: m + 1 evaluations give every primitive's velocity exactly.
+            lo = np.array([c.lower for c in chans], dtype=float)
+            hi = np.array([c.upper for c in chans], dtype=float)
+            u0 = np.clip(np.zeros(len(chans)), lo, hi)
+            v0 = actuator.velocity(body, medium, pts, u0)
+            steps = np.where(np.abs(hi - u0) >= np.abs(lo - u0), hi, lo) - u0
+            cols = []
+            for k in range(len(chans)):
+                u = u0.copy()
+                u[k] += steps[k]
+                cols.append((actuator.velocity(body, medium, pts, u) - v0) / (steps[k] if steps[k] else 1.0))
+            B = np.stack(cols, axis=-1)  # (n, 2, m)
+            for p in prims:
+                v = v0 + B @ (np.asarray(p.values, dtype=float) - u0)
+                best = np.maximum(best, np.linalg.norm(v, axis=1))
+        else:
+            for p in prims:
+                v = np.linalg.norm(actuator.velocity(body, medium, pts, p.values), axis=1)
+                best = np.maximum(best, v)
         speed[free] = best
     return xs, ys, speed.reshape(ny, nx)
 
@@ -100,7 +130,7 @@ def _draw_workspace(ax, workspace, f):
 
 
 def plot_workspace(workspace, bodies, starts, goals, *, routes=None, trajectories=None, predicted=None,
-                   actuator=None, tolerance=None, title=None, backdrop_points=48):
+                   actuator=None, tolerance=None, title=None, backdrop_points=96):
     """Workspace with obstacles, routes, trajectories, starts, goals and a field backdrop.
 
     Parameters
@@ -124,54 +154,97 @@ def plot_workspace(workspace, bodies, starts, goals, *, routes=None, trajectorie
     -------
     matplotlib.figure.Figure
     """
-    from matplotlib.patches import Circle  # noqa: PLC0415
+    from matplotlib.lines import Line2D  # noqa: PLC0415
+    from matplotlib.patches import Circle, Patch  # noqa: PLC0415
 
     xmin, ymin, xmax, ymax = workspace.bounds
     f, unit = length_unit(max(xmax - xmin, ymax - ymin))
     aspect = (ymax - ymin) / (xmax - xmin)
-    fig = _figure(figsize=(7.2, max(3.5, min(7.5, 6.0 * aspect + 0.8))), layout="constrained")
+    fig = _figure(figsize=(7.2, max(3.8, min(8.0, 6.0 * aspect + 1.3))), layout="constrained")
     ax = fig.add_subplot()
+    extra = []
     if actuator is not None and bodies:
-        xs, ys, sp = speed_backdrop(actuator, bodies[0], workspace.medium, workspace, backdrop_points)
+        # Sample up to the solid edges (radius 0) so the obstacles drawn on top keep their true size.
+        n = backdrop_points
+        if "affine_in_input" not in actuator.tags:
+            # One evaluation per primitive per point: cap the work (~1e5 evaluations keeps this under a second).
+            n = max(32, min(n, int(np.sqrt(1.2e5 / max(len(list(actuator.primitives())), 1)))))
+        xs, ys, sp = speed_backdrop(actuator, bodies[0], workspace.medium, workspace, n, radius=0.0)
         if np.any(np.isfinite(sp)):
             sf, su = _speed_unit(float(np.nanmax(sp)))
-            mesh = ax.pcolormesh(xs * f, ys * f, sp * sf, shading="auto", cmap="viridis", alpha=0.55, zorder=0)
-            fig.colorbar(mesh, ax=ax, shrink=0.85, label=f"fastest single-primitive speed of {bodies[0].name} [{su}]")
+            dx, dy = xs[1] - xs[0], ys[1] - ys[0]
+            ext = ((xs[0] - dx / 2) * f, (xs[-1] + dx / 2) * f, (ys[0] - dy / 2) * f, (ys[-1] + dy / 2) * f)
+            img = ax.imshow(np.ma.masked_invalid(sp * sf), origin="lower", extent=ext, cmap="viridis", alpha=0.6,
+                            interpolation="bilinear", aspect="equal", zorder=0)
+            from matplotlib.patches import Polygon as MplPolygon  # noqa: PLC0415
+
+            clip = MplPolygon(np.asarray(workspace.boundary.exterior.coords) * f, closed=True,
+                              transform=ax.transData, fill=False)
+            img.set_clip_path(clip)
+            fig.colorbar(img, ax=ax, shrink=0.85, label=f"fastest single-primitive speed of {bodies[0].name} [{su}]")
+            box = getattr(actuator, "extent", None)
+            if box is not None:
+                # Grey out where the actuator model is not meant to be used (e.g. outside a calibration).
+                X, Y = np.meshgrid(xs, ys)
+                out = (X < box[0]) | (X > box[1]) | (Y < box[2]) | (Y > box[3])
+                if out.any():
+                    ax.imshow(np.ma.masked_where(~out, np.ones_like(sp)), origin="lower", extent=ext,
+                              cmap="Greys", vmin=0, vmax=1.6, alpha=0.75, interpolation="nearest",
+                              aspect="equal", zorder=1).set_clip_path(clip)
+                    extra.append(Patch(color="0.55", alpha=0.75, label="outside the actuator's extent"))
     _draw_workspace(ax, workspace, f)
     colours = [f"C{i % 10}" for i in range(len(bodies))]
     starts = np.asarray(starts, dtype=float)
     goals = np.asarray(goals, dtype=float)
+    # Simulated paths go underneath, wide and translucent; the thinner route and prediction lines
+    # stay visible on top of them.
+    for k, (label, pos) in enumerate(trajectories or []):
+        pos = np.asarray(pos, dtype=float)
+        for i in range(pos.shape[1]):
+            ax.plot(pos[:, i, 0] * f, pos[:, i, 1] * f, lw=2.6 if k == 0 else 1.4, alpha=0.5 if k == 0 else 0.3,
+                    color=colours[i], solid_capstyle="round", zorder=3)
     if routes is not None:
         for i, r in enumerate(routes):
             r = np.asarray(r, dtype=float)
             if len(r):
-                ax.plot(r[:, 0] * f, r[:, 1] * f, ls="--", lw=1.0, color=colours[i],
-                        label="route" if i == 0 else None, zorder=3)
+                ax.plot(r[:, 0] * f, r[:, 1] * f, ls="--", lw=1.1, color=colours[i], zorder=5)
     if predicted is not None:
         p = np.asarray(predicted, dtype=float)
         for i in range(p.shape[1]):
-            ax.plot(p[:, i, 0] * f, p[:, i, 1] * f, ls=":", lw=1.2, color=colours[i],
-                    label="predicted" if i == 0 else None, zorder=4)
-    for k, (label, pos) in enumerate(trajectories or []):
-        pos = np.asarray(pos, dtype=float)
-        for i in range(pos.shape[1]):
-            ax.plot(pos[:, i, 0] * f, pos[:, i, 1] * f, lw=1.0 if k else 1.5, alpha=0.9 if k == 0 else 0.45,
-                    color=colours[i], label="simulated" if (i == 0 and k == 0) else None, zorder=5)
+            ax.plot(p[:, i, 0] * f, p[:, i, 1] * f, ls=":", lw=1.4, color="k", alpha=0.8, zorder=6)
+            ax.plot(p[:, i, 0] * f, p[:, i, 1] * f, ls=":", lw=1.0, color=colours[i], zorder=6)
     for i, b in enumerate(bodies):
         tol = b.radius if tolerance is None else tolerance
-        ax.add_patch(Circle(goals[i] * f, tol * f, fill=False, ls="-", lw=0.8, color=colours[i], zorder=6))
-        ax.add_patch(Circle(starts[i] * f, b.radius * f, color=colours[i], alpha=0.6, zorder=6))
-    ax.scatter(starts[:, 0] * f, starts[:, 1] * f, marker="o", s=14, c=colours, zorder=7, label="start")
-    ax.scatter(goals[:, 0] * f, goals[:, 1] * f, marker="x", s=30, c=colours, zorder=7, label="goal")
+        ax.add_patch(Circle(goals[i] * f, tol * f, fill=False, ls="-", lw=0.8, color=colours[i], zorder=7))
+        ax.add_patch(Circle(starts[i] * f, b.radius * f, color=colours[i], alpha=0.6, zorder=7))
+    ax.scatter(starts[:, 0] * f, starts[:, 1] * f, marker="o", s=14, c=colours, edgecolors="k", linewidths=0.5,
+               zorder=8)
+    ax.scatter(goals[:, 0] * f, goals[:, 1] * f, marker="x", s=30, c=colours, zorder=8)
     for i in range(len(bodies)):
-        ax.annotate(str(i), starts[i] * f, textcoords="offset points", xytext=(4, 4), fontsize=7)
+        ax.annotate(str(i), starts[i] * f, textcoords="offset points", xytext=(4, 4), fontsize=7, zorder=9)
     ax.set_xlim(xmin * f, xmax * f)
     ax.set_ylim(ymin * f, ymax * f)
     ax.set_aspect("equal")
     ax.set_xlabel(f"x [{unit}]")
     ax.set_ylabel(f"y [{unit}]")
     ax.set_title(title or "workspace")
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.1), ncol=4, fontsize=7, frameon=False)
+    # Line styles in neutral grey, then one entry per body colour naming its kind.
+    g = "0.25"
+    handles = [Line2D([], [], color="k", lw=1.5, label="wall")]
+    if workspace.obstacles:
+        handles.append(Patch(facecolor="0.55", edgecolor="k", label="obstacle"))
+    if routes is not None:
+        handles.append(Line2D([], [], color=g, ls="--", lw=1.1, label="planned route"))
+    if predicted is not None:
+        handles.append(Line2D([], [], color=g, ls=":", lw=1.4, label="predicted path"))
+    if trajectories:
+        handles.append(Line2D([], [], color=g, lw=2.6, alpha=0.5, label="simulated path"
+                              + (f" ({len(trajectories)} trials)" if len(trajectories) > 1 else "")))
+    handles += [Line2D([], [], color=g, marker="o", ls="none", ms=4, label="start"),
+                Line2D([], [], color=g, marker="x", ls="none", ms=5, label="goal (circle: arrival radius)")]
+    handles += extra
+    handles += [Patch(color=colours[i], label=f"body {i}: {b.name}") for i, b in enumerate(bodies[:12])]
+    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.1), ncol=3, fontsize=7, frameon=False)
     return fig
 
 
