@@ -285,7 +285,7 @@ def plot_timeline(times, positions, goals, bodies, *, tolerance=None, predicted=
         lab = f"body {i} ({b.name})"
         axes[0].plot(times, pos[:, i, 0] * f, color=c, label=lab)
         axes[1].plot(times, pos[:, i, 1] * f, color=c, label=lab)
-        axes[2].plot(times, np.maximum(err[:, i], 1e-12) * f, color=c, label=lab)
+        axes[2].plot(times, np.maximum(err[:, i], 1e-12) * f, color=c)
         axes[0].axhline(goals[i, 0] * f, color=c, lw=0.6, ls="--")
         axes[1].axhline(goals[i, 1] * f, color=c, lw=0.6, ls="--")
         if predicted is not None:
@@ -296,14 +296,23 @@ def plot_timeline(times, positions, goals, bodies, *, tolerance=None, predicted=
             axes[2].plot(pt, np.maximum(np.linalg.norm(pp[:, i] - goals[i], axis=1), 1e-12) * f, color=c,
                          ls=":", lw=1.0)
     tol = [b.radius for b in bodies] if tolerance is None else [tolerance]
-    axes[2].axhline(min(tol) * f, color="k", ls="--", lw=0.8, label="arrival radius")
+    axes[2].axhline(min(tol) * f, color="k", ls="--", lw=0.8)
     axes[2].set_yscale("log")
     axes[0].set_ylabel(f"x [{unit}]")
     axes[1].set_ylabel(f"y [{unit}]")
     axes[2].set_ylabel(f"distance to goal [{unit}]")
     axes[2].set_xlabel("time [s]")
-    axes[0].set_title("positions (solid: simulated, dotted: predicted, dashed: goal) and errors")
-    axes[2].legend(fontsize=7, loc="upper right", ncol=2)
+    axes[0].set_title("positions and distance to goal")
+    from matplotlib.lines import Line2D  # noqa: PLC0415
+
+    # Outside the axes, so it never hides a curve.
+    handles = [Line2D([], [], color=f"C{i % 10}", lw=1.5, label=f"body {i} ({b.name})") for i, b in enumerate(bodies)]
+    handles += [Line2D([], [], color="0.3", lw=1.5, label="simulated")]
+    if predicted is not None:
+        handles.append(Line2D([], [], color="0.3", ls=":", lw=1.0, label="predicted"))
+    handles += [Line2D([], [], color="0.3", ls="--", lw=0.6, label="goal"),
+                Line2D([], [], color="k", ls="--", lw=0.8, label="arrival radius")]
+    axes[0].legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     for ax in axes:
         ax.grid(alpha=0.3)
     return fig
