@@ -479,7 +479,13 @@ class Comparison:
         return "\n".join(lines)
 
     def bar_chart(self):
-        """Figure with one panel per metric, one bar (with a standard-deviation whisker) per variant."""
+        """Figure with one panel per metric, one bar (with a standard-deviation whisker) per variant.
+
+        Every bar is labelled with its value, so small values (a few µm against mm) and zeros stay
+        readable. Input energies in different units (A^2 s, V^2 s) cannot share an axis: then each bar
+        is drawn relative to the largest energy with the same unit, and labelled with its own value
+        and unit.
+        """
         import matplotlib  # noqa: PLC0415
         from matplotlib.figure import Figure  # noqa: PLC0415
         from matplotlib.patches import Rectangle  # noqa: PLC0415
@@ -488,37 +494,78 @@ class Comparison:
         n = len(keys)
         cols = min(3, max(n, 1))
         rows = int(math.ceil(n / cols)) or 1
-        fig = Figure(figsize=(4.2 * cols, 3.4 * rows + 0.6))
+        fig = Figure(figsize=(4.4 * cols, 3.3 * rows + 0.5), layout="constrained")
         axes = fig.subplots(rows, cols, squeeze=False)
         labels = [r["label"] for r in self.rows]
         colours = matplotlib.rcParams["axes.prop_cycle"].by_key()["color"]
+        # Variant names often share a prefix ("scenario/"); the legend carries the full names.
+        short = _short_labels(labels)
         for ax, (key, title, unit) in zip(axes.flat, keys):
             vals = np.array([np.nan if _nan(r.get(key)) else r[key] for r in self.rows], dtype=float)
             sds = np.array([0.0 if _nan(r.get(key + "_sd")) else r[key + "_sd"] for r in self.rows], dtype=float)
+            texts = None
+            ticks = list(short)
+            ylabel = None
             if key == "success_rate":
                 scale, ulabel = 100.0, "%"
-                ax.set_ylim(0, 105)
             elif key == "input_energy":
-                eu = {r.get("energy_unit") for r in self.rows}
-                scale, ulabel = 1.0, (eu.pop() if len(eu) == 1 else "unit^2 s, per variant")
+                eu = [r.get("energy_unit") or "unit^2 s" for r in self.rows]
+                pretty = [_pretty_unit(u) for u in eu]
+                if len(set(eu)) == 1:
+                    scale, ulabel = _prefix(np.nanmax(np.abs(vals)) if np.any(np.isfinite(vals)) else 1.0, eu[0])
+                    ulabel = _pretty_unit(ulabel)
+                else:
+                    peak = {u: np.nanmax(np.where([e == u for e in eu], np.abs(vals), np.nan)) for u in set(eu)}
+                    rel = np.array([v / peak[u] if peak[u] else 0.0 for v, u in zip(vals, eu)])
+                    sds = np.array([s / peak[u] if peak[u] else 0.0 for s, u in zip(sds, eu)])
+                    texts = [("n/a" if not np.isfinite(v) else f"{v:.4g} {p}") for v, p in zip(vals, pretty)]
+                    ticks = [f"{s}\n[{p}]" for s, p in zip(short, pretty)]
+                    vals, scale, ulabel = rel, 1.0, None
+                    ylabel = "relative to the largest\nwith the same unit [1]"
             else:
                 scale, ulabel = _prefix(np.nanmax(np.abs(vals)) if np.any(np.isfinite(vals)) else 1.0, unit)
             x = np.arange(len(labels))
-            ax.bar(x, np.nan_to_num(vals * scale), yerr=sds * scale, capsize=3,
+            shown = np.nan_to_num(vals * scale)
+            ax.bar(x, shown, yerr=sds * scale, capsize=3, error_kw={"lw": 0.8},
                    color=[colours[i % len(colours)] for i in range(len(labels))])
-            for i, v in enumerate(vals):
-                if not np.isfinite(v):
-                    ax.text(x[i], 0, "n/a", ha="center", va="bottom", fontsize=8)
-            ax.set_xticks(x, labels, rotation=20, ha="right", fontsize=8)
+            if texts is None:
+                # Each value in its own prefix (19.9 µm, not 0.0199 mm); zero in the axis unit.
+                texts = ["n/a" if not np.isfinite(v) else f"{v * scale:.3g} {ulabel}".strip()
+                         if key in ("success_rate", "input_energy") or v == 0 else format_si(v, unit)
+                         for v in vals]
+            top = float(np.nanmax(np.r_[shown + sds * scale, 0.0]))
+            top = top if top > 0 else 1.0
+            for i, txt in enumerate(texts):
+                ax.annotate(txt, (x[i], max(shown[i] + sds[i] * scale, 0.0)), xytext=(0, 2),
+                            textcoords="offset points", ha="center", va="bottom", fontsize=7.5)
+            # Headroom for the value labels only, not a fixed empty band.
+            ax.set_ylim(0, 1.15 * top if key != "success_rate" else 112)
+            if key == "success_rate":
+                ax.set_yticks([0, 25, 50, 75, 100])
+            ax.set_xticks(x, ticks, rotation=20 if max(len(t) for t in short) > 10 else 0,
+                          ha="right" if max(len(t) for t in short) > 10 else "center", fontsize=8)
             ax.set_title(title, fontsize=10)
-            ax.set_ylabel(f"{title} [{ulabel}]" if ulabel else title)
+            ax.set_ylabel(ylabel or (f"{title} [{ulabel}]" if ulabel else title), fontsize=9)
             ax.grid(axis="y", alpha=0.3)
         for ax in list(axes.flat)[n:]:
             ax.set_visible(False)
         handles = [Rectangle((0, 0), 1, 1, color=colours[i % len(colours)]) for i in range(len(labels))]
-        fig.legend(handles, labels, loc="upper center", ncol=min(len(labels), 4), fontsize=8, frameon=False)
-        fig.tight_layout(rect=(0, 0, 1, 0.92))
+        fig.legend(handles, labels, loc="outside upper center", ncol=min(len(labels), 4), fontsize=8, frameon=False)
         return fig
+
+
+def _short_labels(labels):
+    """Variant labels without the prefix they all share up to a '/' (kept whole if that leaves nothing)."""
+    if len(labels) < 2:
+        return list(labels)
+    common = os.path.commonprefix(list(labels))
+    cut = common.rfind("/") + 1
+    out = [lab[cut:] for lab in labels]
+    return out if cut and all(out) else list(labels)
+
+
+def _pretty_unit(unit):
+    return (unit or "").replace("^2", "²").replace(" s", "·s") if unit and "^2" in unit else (unit or "")
 
 
 def _shorten(text, n=300):
