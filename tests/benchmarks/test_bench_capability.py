@@ -7,7 +7,7 @@ air, electrode array with a polystyrene bead / cell mix) and increasing numbers 
 (starts and goals drawn in the free space, 4 radii apart) are run closed loop
 (:func:`fieldplan.live.closed_loop`: Brownian motion, tracking noise, declared hardware limits).
 One table per actuator: success rate, median time to goal over the successes (simulated s), median
-wall time per trial, and the baselines measured in the same run:
+wall time per trial, the commonest failure kinds, and the baselines measured in the same run:
 
 - the one-step counting-rule bound on N: K/2 for an affine actuator with K inputs (linear mode),
   (M - 1)/2 for M time-shared primitives (convex weights: M - 1 free directions);
@@ -18,6 +18,7 @@ Default (reduced) size: 4 trials per N, N in {1, 2, 3}; ``FIELDPLAN_FULL=1``: 20
 success has every true position inside tolerance, no contact and a finite time to goal.
 """
 
+import collections
 import os
 import time
 
@@ -96,6 +97,15 @@ def counting_bound(case):
     return b.mode, b.size, (b.size - 1) / 2.0
 
 
+def _reason(message):
+    """The head of a failure message, without numbers (for counting failures by kind)."""
+    head = message.split(";")[0]
+    for key in ("duration", "gave up", "no route", "cannot plan", "step limit", "the estimates arrived"):
+        if head.startswith(key):
+            return key
+    return head[:30]
+
+
 def run_case(case, seed=0):
     """Closed-loop trials per N; returns rows (N, success rate, median time to goal, median wall time,
     steerable fraction)."""
@@ -107,7 +117,7 @@ def run_case(case, seed=0):
     for N, frac in zip(NS, fracs):
         bodies = case["bodies"](N)
         rmax = max(b.radius for b in bodies)
-        ok, ttg, wall = 0, [], []
+        ok, ttg, wall, why = 0, [], [], collections.Counter()
         for _ in range(TRIALS):
             s = int(rng.integers(2**31))
             starts = ws.sample(N, 1.5 * rmax, s, region=case["region"], separation=4 * rmax)
@@ -122,8 +132,11 @@ def run_case(case, seed=0):
                 assert res.metrics["contacts"] == 0, res.events
                 ok += 1
                 ttg.append(res.time_to_goal)
+            else:
+                why[_reason(res.message)] += 1
+        top = ", ".join(f"{k} x{v}" for k, v in why.most_common(2))
         rows.append((N, ok / TRIALS, float(np.median(ttg)) if ttg else float("nan"), float(np.median(wall)),
-                     float(frac)))
+                     float(frac), top))
     return rows
 
 
@@ -132,9 +145,11 @@ def print_table(name, mode, size, bound, rows):
     rule = "K/2" if mode == "linear" else "(M-1)/2"
     print(f"\n{name}: {mode} mode, {what} = {size}, counting-rule bound {rule} = {bound:g} bodies; "
           f"{TRIALS} closed-loop trials per N, steerable fraction over {COUNT_TRIALS} configurations")
-    print(f"{'N':>3} {'success':>8} {'t_goal med [s]':>15} {'wall/trial [s]':>15} {'N<=bound':>9} {'steerable':>10}")
-    for N, rate, ttg, wall, frac in rows:
-        print(f"{N:>3} {rate:>8.2f} {ttg:>15.4g} {wall:>15.3g} {('yes' if N <= bound else 'no'):>9} {frac:>10.2f}")
+    print(f"{'N':>3} {'success':>8} {'t_goal med [s]':>15} {'wall/trial [s]':>15} {'N<=bound':>9} {'steerable':>10}"
+          "  failures")
+    for N, rate, ttg, wall, frac, why in rows:
+        print(f"{N:>3} {rate:>8.2f} {ttg:>15.4g} {wall:>15.3g} {('yes' if N <= bound else 'no'):>9} {frac:>10.2f}"
+              f"  {why or '-'}")
 
 
 def _bench(case_fn):
@@ -142,7 +157,7 @@ def _bench(case_fn):
     mode, size, bound = counting_bound(case)
     rows = run_case(case)
     print_table(case["name"], mode, size, bound, rows)
-    for _, rate, _, _, frac in rows:
+    for _, rate, _, _, frac, _ in rows:
         assert 0.0 <= rate <= 1.0 and 0.0 <= frac <= 1.0
 
 
