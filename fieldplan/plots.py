@@ -47,6 +47,30 @@ def save(fig, path, dpi=120):
     return path
 
 
+def _primitive_velocities(actuator, body, medium, pts, prims):
+    """Velocity (n, 2) m/s of ``body`` at ``pts`` under each primitive, yielded in order."""
+    prims = list(prims)
+    chans = actuator.channels
+    if "affine_in_input" in actuator.tags and len(prims) > len(chans) + 1:
+        # Affine in the input: m + 1 evaluations give every primitive's velocity exactly.
+        lo = np.array([c.lower for c in chans], dtype=float)
+        hi = np.array([c.upper for c in chans], dtype=float)
+        u0 = np.clip(np.zeros(len(chans)), lo, hi)
+        v0 = actuator.velocity(body, medium, pts, u0)
+        steps = np.where(np.abs(hi - u0) >= np.abs(lo - u0), hi, lo) - u0
+        cols = []
+        for k in range(len(chans)):
+            u = u0.copy()
+            u[k] += steps[k]
+            cols.append((actuator.velocity(body, medium, pts, u) - v0) / (steps[k] if steps[k] else 1.0))
+        B = np.stack(cols, axis=-1)  # (n, 2, m)
+        for p in prims:
+            yield v0 + B @ (np.asarray(p.values, dtype=float) - u0)
+    else:
+        for p in prims:
+            yield actuator.velocity(body, medium, pts, p.values)
+
+
 def speed_backdrop(actuator, body, medium, workspace, n=48, radius=None):
     """Fastest speed one body reaches under any single primitive, on a grid.
 
@@ -91,28 +115,8 @@ def speed_backdrop(actuator, body, medium, workspace, n=48, radius=None):
         pts = xy[free]
         idle = actuator.idle_input()
         best = np.linalg.norm(actuator.velocity(body, medium, pts, idle), axis=1)
-        prims = list(actuator.primitives())
-        chans = actuator.channels
-        if "affine_in_input" in actuator.tags and len(prims) > len(chans) + 1:
-            # Affine in the input: m + 1 evaluations give every primitive's velocity exactly.
-            lo = np.array([c.lower for c in chans], dtype=float)
-            hi = np.array([c.upper for c in chans], dtype=float)
-            u0 = np.clip(np.zeros(len(chans)), lo, hi)
-            v0 = actuator.velocity(body, medium, pts, u0)
-            steps = np.where(np.abs(hi - u0) >= np.abs(lo - u0), hi, lo) - u0
-            cols = []
-            for k in range(len(chans)):
-                u = u0.copy()
-                u[k] += steps[k]
-                cols.append((actuator.velocity(body, medium, pts, u) - v0) / (steps[k] if steps[k] else 1.0))
-            B = np.stack(cols, axis=-1)  # (n, 2, m)
-            for p in prims:
-                v = v0 + B @ (np.asarray(p.values, dtype=float) - u0)
-                best = np.maximum(best, np.linalg.norm(v, axis=1))
-        else:
-            for p in prims:
-                v = np.linalg.norm(actuator.velocity(body, medium, pts, p.values), axis=1)
-                best = np.maximum(best, v)
+        for v in _primitive_velocities(actuator, body, medium, pts, actuator.primitives()):
+            best = np.maximum(best, np.linalg.norm(v, axis=1))
         speed[free] = best
     return xs, ys, speed.reshape(ny, nx)
 
@@ -560,8 +564,8 @@ def plot_inputs(schedule, *, limits=None):
     return fig
 
 
-def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n=24):
-    """Velocity field of one body under each primitive (arrows) over its speed (colour).
+def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n=12, resolution=64):
+    """Velocity field of one body under each primitive: direction arrows over its speed (colour).
 
     Parameters
     ----------
@@ -573,52 +577,77 @@ def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n
         Draw at most this many primitives (the first ones).
     n : int
         Arrows along the longer side.
+    resolution : int
+        Speed-image points along the longer side.
 
     Returns
     -------
     matplotlib.figure.Figure
     """
-    prims = list(actuator.primitives())[:max_panels]
+    import shapely  # noqa: PLC0415
+    from matplotlib.patches import Polygon as MplPolygon  # noqa: PLC0415
+
+    every = list(actuator.primitives())
+    prims = every[:max_panels]
     xmin, ymin, xmax, ymax = workspace.bounds
     f, unit = length_unit(max(xmax - xmin, ymax - ymin))
     w, h = xmax - xmin, ymax - ymin
-    nx, ny = max(int(n * w / max(w, h)), 6), max(int(n * h / max(w, h)), 6)
-    X, Y = np.meshgrid(xmin + (np.arange(nx) + 0.5) * w / nx, ymin + (np.arange(ny) + 0.5) * h / ny)
-    xy = np.c_[X.ravel(), Y.ravel()]
-    free = workspace.contains(xy, body.radius)
-    vel = []
-    for p in prims:
-        v = np.full_like(xy, np.nan)
-        if free.any():
-            v[free] = actuator.velocity(body, medium, xy[free], p.values)
-        vel.append(v)
-    vmax = max([float(np.nanmax(np.linalg.norm(v, axis=1))) for v in vel if np.any(np.isfinite(v))] or [1.0])
+
+    def grid(m):
+        nx, ny = max(int(m * w / max(w, h)), 4), max(int(m * h / max(w, h)), 4)
+        X, Y = np.meshgrid(xmin + (np.arange(nx) + 0.5) * w / nx, ymin + (np.arange(ny) + 0.5) * h / ny)
+        return nx, ny, np.c_[X.ravel(), Y.ravel()]
+
+    # Colour: sampled up to the solid edges (obstacles are drawn on top) and clipped to the wall.
+    fx, fy, fxy = grid(resolution)
+    pad = 1.5 * max(w / fx, h / fy)
+    inside = shapely.contains_xy(workspace.boundary.buffer(pad), fxy[:, 0], fxy[:, 1])
+    speeds = []
+    for v in _primitive_velocities(actuator, body, medium, fxy[inside], prims):
+        s = np.full(len(fxy), np.nan)
+        s[inside] = np.linalg.norm(v, axis=1)
+        speeds.append(s.reshape(fy, fx))
+    # Arrows: a coarse grid of free centres, so each arrow is big enough to read.
+    ax_, ay_, axy = grid(n)
+    free = workspace.contains(axy, body.radius)
+    arrows = list(_primitive_velocities(actuator, body, medium, axy[free], prims)) if free.any() else []
+    vmax = max([float(np.nanmax(s)) for s in speeds if np.any(np.isfinite(s))] or [1.0])
     sf, su = _speed_unit(vmax)
     cols = min(4, max(len(prims), 1))
     rows = int(np.ceil(len(prims) / cols)) or 1
-    fig = _figure(figsize=(3.4 * cols + 1.0, 3.2 * rows * max(h / w, 0.5)), layout="constrained")
+    fig = _figure(figsize=(3.4 * cols + 1.0, 3.5 * rows * max(h / w, 0.5) + 0.6), layout="constrained")
     axes = np.atleast_1d(fig.subplots(rows, cols, squeeze=False)).ravel()
+    ext = (xmin * f, xmax * f, ymin * f, ymax * f)
+    cell = 0.75 * min(w / ax_, h / ay_) * f
     mappable = None
-    for ax, p, v in zip(axes, prims, vel):
-        s = np.linalg.norm(v, axis=1).reshape(ny, nx) * sf
-        mappable = ax.pcolormesh(X * f, Y * f, s, shading="auto", cmap="viridis", vmin=0, vmax=vmax * sf)
-        # Arrows show direction only (unit length, 0.8 of a cell); the colour shows the speed, whose
-        # range across a workspace spans decades.
-        norm = np.linalg.norm(v, axis=1, keepdims=True)
-        d = np.divide(v, norm, out=np.zeros_like(v), where=norm > 0) * 0.8 * min(w / nx, h / ny) * f
-        ax.quiver(xy[:, 0] * f, xy[:, 1] * f, d[:, 0], d[:, 1], color="w", scale_units="xy", angles="xy",
-                  scale=1.0, width=0.004)
+    for j, (ax, p, s) in enumerate(zip(axes, prims, speeds)):
+        mappable = ax.imshow(np.ma.masked_invalid(s * sf), origin="lower", extent=ext, cmap="viridis", vmin=0,
+                             vmax=vmax * sf, interpolation="bilinear", aspect="equal")
+        mappable.set_clip_path(MplPolygon(np.asarray(workspace.boundary.exterior.coords) * f, closed=True,
+                                          transform=ax.transData, fill=False))
+        if arrows:
+            # Arrows show direction only (all the same length); the colour shows the speed, whose range
+            # across a workspace spans decades.
+            v = arrows[j]
+            norm = np.linalg.norm(v, axis=1, keepdims=True)
+            d = np.divide(v, norm, out=np.zeros_like(v), where=norm > 0) * cell
+            pts = axy[free]
+            ax.quiver((pts[:, 0] - d[:, 0] / (2 * f)) * f, (pts[:, 1] - d[:, 1] / (2 * f)) * f, d[:, 0], d[:, 1],
+                      color="w", edgecolor="k", linewidth=0.4, scale_units="xy", angles="xy", scale=1.0,
+                      width=0.007, headwidth=3.5, headlength=3.5, headaxislength=3.2, zorder=4)
         _draw_workspace(ax, workspace, f)
-        ax.set_aspect("equal")
-        ax.set_title(p.name, fontsize=9)
+        ax.set_xlim(xmin * f, xmax * f)
+        ax.set_ylim(ymin * f, ymax * f)
+        ax.set_title(_short_label(p.name), fontsize=9)
         ax.set_xlabel(f"x [{unit}]")
         ax.set_ylabel(f"y [{unit}]")
     for ax in axes[len(prims):]:
         ax.set_visible(False)
     if mappable is not None:
         fig.colorbar(mappable, ax=list(axes[:len(prims)]), label=f"speed of {body.name} [{su}]")
-    fig.suptitle(f"{type(actuator).__name__}: velocity of {body.name} under each primitive"
-                 + (f" (first {max_panels})" if len(list(actuator.primitives())) > max_panels else ""))
+    shown = f" ({len(prims)} of {len(every)} primitives: the first ones)" if len(every) > len(prims) else ""
+    fig.suptitle(f"{type(actuator).__name__}: velocity of {body.name} under each primitive{shown}\n"
+                 "arrows: direction of motion (equal length); colour: speed", fontsize=10)
     return fig
 
 

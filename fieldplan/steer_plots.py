@@ -134,7 +134,10 @@ def plot_count_curve(curves, *, title=None, ax=None):
         limit = c.rank_limit if np.isfinite(c.rank_limit) else c.counting_limit
         ax.axvline(limit, color=color, ls="--", lw=0.8)
     ax.plot([], [], color="0.3", ls="--", lw=0.8, label="counting limit: K/2, or field rank/2 if lower")
+    # Say what the whiskers are: a binomial proportion's 95 % Wilson score interval over the trials.
+    ax.errorbar([], [], yerr=[], color="0.3", capsize=3, ls="none", label="bars: 95 % Wilson interval")
     ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+    ax.grid(alpha=0.3)
     ax.set_xlabel("number of bodies N")
     ax.set_ylabel("fraction of configurations steerable (1)")
     ax.set_ylim(-0.03, 1.03)
