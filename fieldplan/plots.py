@@ -513,7 +513,8 @@ def plot_inputs(schedule, *, limits=None):
                 _hz_axis(ax, lo, float(np.nanmax(vals[:, ks])))
                 ax.set_ylabel("frequency")
             else:
-                ax.set_ylabel(f"{chans[ks[0]].name}\n[{shown}]" if single else f"value [{shown}]",
+                ax.set_ylabel(f"{chans[ks[0]].name}\n[{'1' if shown == 'dimensionless' else shown}]" if single
+                              else f"value [{shown}]",
                               fontsize=8 if single else None)
             if single:
                 handles = handles[1:]
