@@ -6,7 +6,8 @@ For each built-in actuator (coil array with fixed-moment spheres, vibrating plat
 air, electrode array with a polystyrene bead / cell mix) and increasing numbers of bodies N, seeded random tasks
 (starts and goals drawn in the free space, 4 radii apart) are run closed loop
 (:func:`fieldplan.live.closed_loop`: Brownian motion, tracking noise, declared hardware limits).
-One table per actuator: success rate, median time to goal over the successes (simulated s), median
+One table per actuator: success rate (every body truly within tolerance and no body-body contact on
+the way), median time to goal over the successes (simulated s), median
 wall time per trial, the commonest failure kinds, and the baselines measured in the same run:
 
 - the one-step counting-rule bound on N: K/2 for an affine actuator with K inputs (linear mode),
@@ -129,9 +130,12 @@ def run_case(case, seed=0):
             if res.success:
                 # Correctness of what is counted as a success (times are never asserted).
                 assert res.metrics["all_reached"] and np.isfinite(res.time_to_goal), res.message
-                assert res.metrics["contacts"] == 0, res.events
+            if res.success and res.metrics["contacts"] == 0:
                 ok += 1
                 ttg.append(res.time_to_goal)
+            elif res.success:
+                # Arrived, but two bodies touched on the way: not a success by this benchmark's rule.
+                why["arrived with contact"] += 1
             else:
                 why[_reason(res.message)] += 1
         top = ", ".join(f"{k} x{v}" for k, v in why.most_common(2))
@@ -144,7 +148,8 @@ def print_table(name, mode, size, bound, rows):
     what = "K" if mode == "linear" else "M"
     rule = "K/2" if mode == "linear" else "(M-1)/2"
     print(f"\n{name}: {mode} mode, {what} = {size}, counting-rule bound {rule} = {bound:g} bodies; "
-          f"{TRIALS} closed-loop trials per N, steerable fraction over {COUNT_TRIALS} configurations")
+          f"{TRIALS} closed-loop trials per N, steerable fraction over {COUNT_TRIALS} configurations; "
+          "success = all truly within tolerance and no contact")
     print(f"{'N':>3} {'success':>8} {'t_goal med [s]':>15} {'wall/trial [s]':>15} {'N<=bound':>9} {'steerable':>10}"
           "  failures")
     for N, rate, ttg, wall, frac, why in rows:
