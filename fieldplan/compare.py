@@ -512,8 +512,8 @@ class Comparison:
                 eu = [r.get("energy_unit") or "unit^2 s" for r in self.rows]
                 pretty = [_pretty_unit(u) for u in eu]
                 if len(set(eu)) == 1:
-                    scale, ulabel = _prefix(np.nanmax(np.abs(vals)) if np.any(np.isfinite(vals)) else 1.0, eu[0])
-                    ulabel = _pretty_unit(ulabel)
+                    # No SI prefix: "kV²·s" would read as (kV)²·s.
+                    scale, ulabel = 1.0, pretty[0]
                 else:
                     peak = {u: np.nanmax(np.where([e == u for e in eu], np.abs(vals), np.nan)) for u in set(eu)}
                     rel = np.array([v / peak[u] if peak[u] else 0.0 for v, u in zip(vals, eu)])
