@@ -457,7 +457,11 @@ class Comparison:
                 if key == "success_rate":
                     cells.append("n/a" if _nan(v) else f"{100 * v:.0f} %")
                 elif key == "input_energy":
-                    cells.append("n/a" if _nan(v) else f"{v:.3g} {r.get('energy_unit', 'unit^2 s')}")
+                    # Four significant digits and no exponent up to 1e4 ("3553 V^2 s", not "3.55e+03").
+                    txt = "n/a" if _nan(v) else f"{v:.4g} {r.get('energy_unit', 'unit^2 s')}"
+                    if not _nan(v) and not _nan(sd) and sd:
+                        txt += f" ± {sd:.2g}"
+                    cells.append(txt)
                 else:
                     txt = format_si(v, unit)
                     if not _nan(sd) and sd and key != "steerability":

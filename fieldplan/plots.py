@@ -382,7 +382,7 @@ def _hz_axis(ax, lo, hi):
     ax.yaxis.set_major_formatter(EngFormatter(unit="Hz"))
 
 
-def _limit_lines(ax, lim, colour, unit, first):
+def _limit_lines(ax, lim, colour, unit):
     """Dashed lines at the declared bounds; dash-dot at +-RMS. Returns legend handles added."""
     for val in (lim.lower, lim.upper):
         if val is not None:
@@ -416,6 +416,7 @@ def plot_inputs(schedule, *, limits=None):
     matplotlib.figure.Figure
     """
     from matplotlib.lines import Line2D  # noqa: PLC0415
+    from matplotlib.patches import Patch  # noqa: PLC0415
 
     chans = list(schedule.channels)
     starts = np.asarray(schedule.starts, dtype=float)
@@ -483,8 +484,7 @@ def plot_inputs(schedule, *, limits=None):
                                     step="post", color=colour, alpha=0.2, lw=0)
                     ax.step(edges, np.append(mean, mean[-1]), where="post", lw=1.0, color=colour)
                     handles.append(Line2D([], [], color=colour, lw=1.0, label=f"{c.name}: mean per {wlab}"))
-                    handles.append(__import__("matplotlib.patches", fromlist=["Patch"]).Patch(
-                        color=colour, alpha=0.2, label=f"{c.name}: min-max per {wlab}"))
+                    handles.append(Patch(color=colour, alpha=0.2, label=f"{c.name}: min-max per {wlab}"))
                 else:
                     # Equal channels overlap exactly: vary width, dash and marker so each stays visible.
                     ls, mk = _STYLES[j % len(_STYLES)], _MARKERS[j % len(_MARKERS)]
@@ -502,7 +502,7 @@ def plot_inputs(schedule, *, limits=None):
                         handles.append(Line2D([], [], color=colour, lw=lw, ls=ls, marker=mk, ms=4,
                                               mfc="none" if j % 2 else colour, label=c.name))
                 if limits is not None:
-                    note = _limit_lines(ax, limits.get(c.name), colour, shown, j == 0)
+                    note = _limit_lines(ax, limits.get(c.name), colour, shown)
                     if note and note not in notes:
                         notes.append(note)
             if limits is not None:
