@@ -375,6 +375,13 @@ def _bin_range(starts, durations, values, edges):
     return lo, hi
 
 
+def _duty_norm():
+    """Square-root colour scale for duty fractions, so a primitive played 5 % of a bin still shows."""
+    from matplotlib.colors import PowerNorm  # noqa: PLC0415
+
+    return PowerNorm(gamma=0.5, vmin=0.0, vmax=1.0)
+
+
 def _hz_axis(ax, lo, hi):
     from matplotlib.ticker import EngFormatter  # noqa: PLC0415
 
@@ -434,6 +441,12 @@ def plot_inputs(schedule, *, limits=None):
             if 1 < len(u) <= 6 and len(chans) > 1 and sum(ch.unit == c.unit for ch in chans) == 1:
                 discrete[k] = u
     names = [lab for lab in dict.fromkeys(schedule.labels) if lab and lab != "mix"]
+    if len(names) > 1:
+        # Most-played primitive on top, idle at the bottom: the rows that matter are read first.
+        lab_arr = np.asarray(schedule.labels, dtype=object)
+        played = {n: float(durs[lab_arr == n].sum()) for n in names}
+        names.sort(key=lambda n: (n == "idle", -played[n]))
+        names.reverse()
     raster = 1 < len(names) <= 40
     panels = []  # (kind, payload, height)
     for unit in units:
@@ -531,8 +544,8 @@ def plot_inputs(schedule, *, limits=None):
             ind = (vals[:, [k]] == u[None, :]).astype(float)
             duty = _bin_average(starts, durs, ind, edges)
             img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
-                            extent=(t0, t1, -0.5, len(u) - 0.5), cmap="Greys", vmin=0.0, vmax=1.0)
-            fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab}")
+                            extent=(t0, t1, -0.5, len(u) - 0.5), cmap="Greys", norm=_duty_norm())
+            fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab} (sqrt scale)")
             if c.unit == "Hz":
                 from matplotlib.ticker import EngFormatter  # noqa: PLC0415
 
@@ -548,8 +561,8 @@ def plot_inputs(schedule, *, limits=None):
                 ind = np.column_stack([(lab == n).astype(float) for n in payload])
                 duty = _bin_average(starts, durs, ind, edges)
                 img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
-                                extent=(t0, t1, -0.5, len(payload) - 0.5), cmap="Greys", vmin=0.0, vmax=1.0)
-                fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab}")
+                                extent=(t0, t1, -0.5, len(payload) - 0.5), cmap="Greys", norm=_duty_norm())
+                fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab} (sqrt scale)")
             else:
                 for i, name in enumerate(payload):
                     spans = [(s, d) for s, d, lab in zip(starts, durs, schedule.labels) if lab == name]
