@@ -290,7 +290,9 @@ def plot_timeline(times, positions, goals, bodies, *, tolerance=None, predicted=
         lab = f"body {i} ({b.name})"
         axes[0].plot(times, pos[:, i, 0] * f, color=c, label=lab)
         axes[1].plot(times, pos[:, i, 1] * f, color=c, label=lab)
-        axes[2].plot(times, np.maximum(err[:, i], 1e-12) * f, color=c)
+        # Symmetric bodies have equal errors: earlier bodies drawn wider underneath stay visible.
+        axes[2].plot(times, np.maximum(err[:, i], 1e-12) * f, color=c,
+                     lw=1.5 + 2.0 * (len(bodies) - 1 - i) / max(len(bodies) - 1, 1), alpha=0.85)
         axes[0].axhline(goals[i, 0] * f, color=c, lw=0.6, ls="--")
         axes[1].axhline(goals[i, 1] * f, color=c, lw=0.6, ls="--")
         if predicted is not None:
