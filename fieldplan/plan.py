@@ -102,6 +102,12 @@ class PlanSettings:
         In timeshare mode, play each period's primitive mix in this many shorter rounds (fewer when
         the hardware time step does not divide the period, one with a minimum dwell), so that a body
         strays less from the straight path between period ends.
+    arrival_margin : float
+        Once every body is within tolerance, the open-loop plan keeps steering (for at most
+        ``settle_steps`` periods) until every body is within ``arrival_margin * tolerance``: a plan
+        that stops exactly on the arrival radius would pass or fail its noisy trials by chance.
+    settle_steps : int
+        Most extra periods spent on that settling.
     """
 
     period: float | None = None
@@ -127,6 +133,8 @@ class PlanSettings:
     solver: str | None = None
     separation_slots: int | None = None
     timeshare_rounds: int = 4
+    arrival_margin: float = 0.5
+    settle_steps: int = 30
 
     def __post_init__(self):
         def positive(key, allow_none=True):
@@ -150,6 +158,10 @@ class PlanSettings:
             v = getattr(self, key)
             if not (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= 1):
                 raise FieldplanError(f"PlanSettings {key} must be an integer >= 1, got {v!r}.")
+        if not (0 < self.arrival_margin <= 1):
+            raise FieldplanError(f"PlanSettings arrival_margin must be in (0, 1], got {self.arrival_margin!r}.")
+        if not (isinstance(self.settle_steps, (int, np.integer)) and self.settle_steps >= 0):
+            raise FieldplanError(f"PlanSettings settle_steps must be an integer >= 0, got {self.settle_steps!r}.")
         if self.backend not in ("osqp", "cvxpy"):
             raise FieldplanError(f"PlanSettings backend must be 'osqp' or 'cvxpy', got {self.backend!r}.")
 
@@ -1185,9 +1197,9 @@ class Controller:
             out[idx] = self.actuator.velocity(body, self.medium, xy[idx], u)
         return out
 
-    def arrived(self, positions):
-        """Whether each body is within tolerance of its goal, bool (n,)."""
-        return np.linalg.norm(np.asarray(positions, float) - self.goals, axis=1) <= self.tolerance
+    def arrived(self, positions, margin=1.0):
+        """Whether each body is within ``margin`` times its tolerance of its goal, bool (n,)."""
+        return np.linalg.norm(np.asarray(positions, float) - self.goals, axis=1) <= margin * self.tolerance
 
     def body_reasons(self, positions):
         """Why each body that has not arrived has not, list of str or None."""
@@ -1346,13 +1358,21 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
         status = 3
         head = "cannot plan"
     else:
+        settle_left = None
         for _ in range(ctrl.settings.max_steps):
             pos = sim.positions
             if ctrl.arrived(pos).all():
-                status = 0
-                break
+                if settle_left is None:
+                    settle_left = int(ctrl.settings.settle_steps)
+                if settle_left <= 0 or ctrl.arrived(pos, ctrl.settings.arrival_margin).all():
+                    status = 0
+                    break
+                settle_left -= 1
             if sim.time >= ctrl.time_limit - 1e-9 * T:
-                head = f"time limit {ctrl.time_limit:.4g} s reached"
+                if ctrl.arrived(pos).all():
+                    status = 0
+                else:
+                    head = f"time limit {ctrl.time_limit:.4g} s reached"
                 break
             if ctrl.gave_up is not None:
                 status = 2
