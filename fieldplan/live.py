@@ -48,7 +48,8 @@ class LiveResult:
     status : int
         0 success, 1 duration reached, 2 controller gave up (fruitless stall recoveries),
         3 too many dropped frames in a row, 4 no route, 5 the applied schedule breaks a declared
-        hardware limit (see ``violations``; never a success).
+        hardware limit (see ``violations``; never a success), 6 (:func:`closed_loop` only) two
+        bodies touched in the simulated truth (never a success: plans must be collision-free).
     message : str
         Names every body that did not arrive and why.
     times : ndarray, shape (T,)
@@ -221,7 +222,11 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
         est_times.append(t)
         if controller.arrived(est).all():
             settled += 1
-            if settled >= settle:
+            # Stopping on the first estimate inside the arrival radius would leave the true bodies
+            # on its edge: keep steering toward the goals for a few periods (PlanSettings
+            # arrival_margin, settle_steps), as plan() does.
+            margin_ok = controller.arrived(est, controller.settings.arrival_margin).all()
+            if settled >= settle and (margin_ok or settled > settle + controller.settings.settle_steps):
                 status = 0
                 break
         else:
@@ -366,6 +371,15 @@ def closed_loop(model, truth, bodies, workspace, starts, goals, *, limits=None, 
         msg = "the estimates arrived but " + "; ".join(missed)
     status = res.status if truth_ok or res.status != 0 else 1
     truth_ok = truth_ok and not res.violations
+    touches = [e for e in sim.events if e.kind == "contact"]
+    if touches:
+        e = touches[0]
+        i, j = e.bodies
+        more = f" ({len(touches) - 1} more contact(s))" if len(touches) > 1 else ""
+        msg = (f"bodies {i} ({bodies[i].name}) and {j} ({bodies[j].name}) touched at t = {e.time:.4g} s{more}; "
+               + msg)
+        if truth_ok:
+            truth_ok, status = False, 6
     return LiveResult(truth_ok, 0 if truth_ok else status, msg, times, pos, res.schedule, res.step_times,
                       res.stalls, res.dropped, res.routes, res.goals, res.bodies_report, res.estimates,
                       res.estimate_times, list(sim.events), metrics, float(metrics.get("time_to_goal", np.nan)),

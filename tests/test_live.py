@@ -95,3 +95,20 @@ def test_run_live_stops_when_the_tracker_goes_blind():
     res = run_live(ctrl, observe, sim.apply, max_dropped=3)
     assert not res.success and res.status == 3
     assert "no usable position for 4 periods" in res.message
+
+
+def test_a_contact_in_the_simulated_truth_is_never_a_success():
+    # Two beads start 0.2 um apart: thermal motion makes them touch before the controller can part
+    # them, and a collision-free plan is part of the job, so the closed loop must say so.
+    import fieldplan
+    from fieldplan.live import closed_loop
+    from fieldplan.testing import SourceArray
+    act = SourceArray([[0, 0], [1e-3, 0], [1e-3, 1e-3], [0, 1e-3]], force=2e-12)
+    ws = fieldplan.Workspace((0, 0, 1e-3, 1e-3))
+    bead = fieldplan.Body("bead", radius=1e-6, density=1050.0)
+    starts = [[5e-4, 5e-4], [5e-4 + 2.2e-6, 5e-4]]
+    goals = [[5e-4, 6e-4], [5e-4 + 2.2e-6, 6e-4]]
+    res = closed_loop(act, act, [bead, bead], ws, starts, goals, rng=0)
+    assert res.metrics["contacts"] >= 1
+    assert not res.success and res.status in (1, 2, 6)
+    assert res.message.startswith("bodies 0 (bead) and 1 (bead) touched at t = ")
