@@ -355,7 +355,11 @@ def _cmd_inspect(args):
         if not counts or min(counts) < 1:
             raise _UserError(f"--counts: counts must be >= 1, got {args.counts!r}.")
     else:
-        counts = list(range(1, len(sc.bodies) + 2))
+        # Go past the one-step counting limit (K/2 inputs, or (M - 1)/2 primitives) so the curve
+        # shows where it drops, within a budget of six counts.
+        act = sc.actuator
+        k = len(act.channels) if "affine_in_input" in act.tags else max(len(act.primitives()) - 1, 1)
+        counts = list(range(1, min(max(len(sc.bodies) + 1, int(k // 2) + 2), 6) + 1))
     parent = os.path.dirname(out)
     os.makedirs(parent, exist_ok=True)
     tmp = tempfile.mkdtemp(prefix=f".{os.path.basename(out)}.tmp-", dir=parent)
@@ -450,9 +454,13 @@ def _count_figure(cc, body):
     ax = fig.add_subplot()
     c = np.asarray(cc.counts)
     ax.errorbar(c, cc.fraction, yerr=[np.asarray(cc.fraction) - cc.low, cc.high - np.asarray(cc.fraction)],
-                marker="o", capsize=3, label=f"{body.name} ({cc.trials} random configurations each)")
+                marker="o", capsize=3,
+                label=f"{body.name} ({cc.trials} random configurations each; bars: 95 % Wilson interval)")
     ax.axvline(cc.counting_limit, color="k", ls="--", lw=0.8, label=f"counting limit K/2 = {cc.counting_limit:g}")
     ax.set_xlabel("number of bodies N [-]")
+    from matplotlib.ticker import MaxNLocator  # noqa: PLC0415
+
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_ylabel("fraction steerable now [-]")
     ax.set_ylim(-0.05, 1.05)
     ax.grid(alpha=0.3)

@@ -1219,8 +1219,10 @@ class Controller:
             elif getattr(self, "blocked", None):
                 out.append(self.blocked)
             elif i in stalled_bodies:
+                why = ("without pushing the others away" if self.n > 1
+                       else "(no input moves it toward its goal here: a trap or dead zone of the field)")
                 out.append(f"stalled {err[i]:.3g} m from its goal: the shared fields could not move it there "
-                           f"without pushing the others away (recoveries tried: {self._stall_count[i]})")
+                           f"{why} (recoveries tried: {self._stall_count[i]})")
             elif self.initial_speed[i] <= 0:
                 out.append("the actuator cannot push it where it starts (available speed 0)")
             else:
