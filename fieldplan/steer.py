@@ -933,14 +933,17 @@ def _zonotope_speeds_2d(gens, center, rtol, chunk):
         cand = np.concatenate([pc, -pc], axis=0)          # (2K, b, 2)
         valid = np.concatenate([nrm, nrm], axis=0) > 0
         h = np.einsum("cbd,bd->cb", cand, c0) + np.abs(np.einsum("cbd,kbd->ckb", cand, g)).sum(axis=1)
-        h = np.where(valid, h, np.inf)
-        j = np.argmin(h, axis=0)
-        hb = h[j, np.arange(h.shape[1])]
-        sc = scale[a:a + chunk]
-        ok = np.isfinite(hb) & (hb > rtol * sc) & (sc > 0)
-        speeds[a:a + chunk] = np.where(ok, hb, 0.0)
-        dirs[a:a + chunk] = cand[j, np.arange(h.shape[1])]
+        speeds[a:a + chunk], dirs[a:a + chunk] = _smallest_support(cand, h, valid, scale[a:a + chunk], rtol)
     return speeds, dirs
+
+
+def _smallest_support(cand, h, valid, scale, rtol):
+    """Per body, the smallest support value over candidate facet normals (the inradius) and its normal."""
+    h = np.where(valid, h, np.inf)
+    j = np.argmin(h, axis=0)
+    hb = h[j, np.arange(h.shape[1])]
+    ok = np.isfinite(hb) & (hb > rtol * scale) & (scale > 0)
+    return np.where(ok, hb, 0.0), cand[j, np.arange(h.shape[1])]
 
 
 def _polytope_speeds_2d(pts, rtol, chunk):
@@ -958,13 +961,7 @@ def _polytope_speeds_2d(pts, rtol, chunk):
         cand = np.concatenate([pc, -pc], axis=0)
         valid = np.concatenate([nrm, nrm], axis=0) > 0
         h = np.einsum("cbd,jbd->cjb", cand, p).max(axis=1)
-        h = np.where(valid, h, np.inf)
-        j = np.argmin(h, axis=0)
-        hb = h[j, np.arange(h.shape[1])]
-        sc = scale[a:a + chunk]
-        ok = np.isfinite(hb) & (hb > rtol * sc) & (sc > 0)
-        speeds[a:a + chunk] = np.where(ok, hb, 0.0)
-        dirs[a:a + chunk] = cand[j, np.arange(h.shape[1])]
+        speeds[a:a + chunk], dirs[a:a + chunk] = _smallest_support(cand, h, valid, scale[a:a + chunk], rtol)
     return speeds, dirs
 
 
