@@ -164,15 +164,19 @@ def _bench(case_fn):
     print_table(case["name"], mode, size, bound, rows)
     for _, rate, _, _, frac, _ in rows:
         assert 0.0 <= rate <= 1.0 and 0.0 <= frac <= 1.0
+    return rows
 
 
 def test_bench_capability_coil_array():
-    _bench(coil_case)
+    rows = _bench(coil_case)
+    assert rows, 'no rows measured'
 
 
 def test_bench_capability_plate():
-    _bench(plate_case)
+    rows = _bench(plate_case)
+    assert rows, 'no rows measured'
 
 
 def test_bench_capability_electrode_array():
-    _bench(electrode_case)
+    rows = _bench(electrode_case)
+    assert rows, 'no rows measured'

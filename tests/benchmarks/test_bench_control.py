@@ -22,6 +22,7 @@ import time
 
 import cvxpy as cp
 import numpy as np
+import pytest
 
 from fieldplan import Body, Workspace
 from fieldplan.control import StepData, StepProgram, pair_slots
@@ -184,8 +185,10 @@ def test_bench_controller_period():
             for k in range(8):
                 x = x + rng.normal(size=x.shape) * 1e-7
                 t = time.perf_counter()
-                ctrl.step(x, (k + 1) * ctrl.period)
+                segs = ctrl.step(x, (k + 1) * ctrl.period)
                 steps.append(time.perf_counter() - t)
+                # correctness, not time: one period of segments comes back
+                assert sum(sg.duration for sg in segs) == pytest.approx(ctrl.period, rel=1e-9)
                 solves.append(ctrl.records[-1]["solve_time"])
                 t = time.perf_counter()
                 act.basis([bead] * (3 * n), ws.medium, np.vstack([x, x, x]))
