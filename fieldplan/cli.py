@@ -281,16 +281,10 @@ def _cmd_compare(args):
     from .schedule import atomic_write  # noqa: PLC0415
 
     seeds = _parse_seeds(args.seeds)
-    problems, scenarios = [], []
-    for path in args.scenarios:
-        try:
-            sc = _load(path, args)
-        except ScenarioError as exc:
-            problems.extend(exc.problems)
-            continue
-        scenarios.extend(sc.variants if sc.variants else [sc])
+    loaded, problems = _load_each(args.scenarios, args)
     if problems:
         raise ScenarioError(problems)
+    scenarios = [v for _, sc in loaded for v in (sc.variants or [sc])]
     names = [s.name for s in scenarios]
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
@@ -469,17 +463,23 @@ def _count_figure(cc, body):
     return fig
 
 
+def _load_each(paths, args):
+    """Load every scenario file; returns ``[(path, scenario)]`` and all problems of the bad ones."""
+    loaded, problems = [], []
+    for path in paths:
+        try:
+            loaded.append((path, _load(path, args)))
+        except ScenarioError as exc:
+            problems.extend(exc.problems)
+    return loaded, problems
+
+
 # ---------------------------------------------------------------------------------------------
 def _cmd_validate(args):
     from .scenario import dump_scenario  # noqa: PLC0415
 
-    problems = []
-    for path in args.scenarios:
-        try:
-            sc = _load(path, args)
-        except ScenarioError as exc:
-            problems.extend(exc.problems)
-            continue
+    loaded, problems = _load_each(args.scenarios, args)
+    for path, sc in loaded:
         if args.normalised:
             print(f"# {path} (normalised, SI units)")
             print(dump_scenario(sc))
@@ -487,8 +487,9 @@ def _cmd_validate(args):
                 print(f"# {path}: variant {v.name}")
                 print(dump_scenario(v))
         else:
-            _say(args, f"{path}: ok - {len(sc.bodies)} bodies, {type(sc.actuator).__name__} with "
-                       f"{len(sc.actuator.channels)} channels"
+            nb, nc = len(sc.bodies), len(sc.actuator.channels)
+            _say(args, f"{path}: ok - {nb} bod{'y' if nb == 1 else 'ies'}, {type(sc.actuator).__name__} with "
+                       f"{nc} channel{'' if nc == 1 else 's'}"
                        + (f", {len(sc.variants)} variants" if sc.variants else ""))
     if problems:
         raise ScenarioError(problems)
