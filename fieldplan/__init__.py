@@ -18,7 +18,8 @@ Errors
     FieldplanError, UnitError, ActuatorError, WorkspaceError, LimitError, ScenarioError
 
 Modules with their own public surface
-    fieldplan.plan       plan, PlanSettings, PlanResult, Controller (routes + step program)
+    fieldplan.planning   Controller (the horizon planner), cost_to_go, HorizonProgram, PlanSettings
+    fieldplan.plan       plan, PlanResult, capability_curve, StepController (the earlier controller)
     fieldplan.live       run_live, closed_loop (the same controller against a tracker and driver)
     fieldplan.routes     occupancy graph, A* routes, goal assignment
     fieldplan.steer      steerability, speed_map, count_curve, select_primitives, compare_designs,
@@ -45,7 +46,7 @@ __version__ = "0.1.0"
 
 # The planner pulls in cvxpy/OSQP/networkx (about a second): load it on first use only.
 _LAZY = {
-    "plan": "plan", "PlanSettings": "plan", "PlanResult": "plan", "Controller": "plan",
+    "plan": "plan", "PlanSettings": "planning", "PlanResult": "plan", "Controller": "planning",
     "capability_curve": "plan", "run_live": "live", "closed_loop": "live", "LiveResult": "live",
     "load_scenario": "scenario", "run_scenario": "compare", "write_outputs": "export",
 }

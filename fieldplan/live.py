@@ -1,6 +1,6 @@
 """The live loop: tracker -> controller -> driver, with latency and dropped frames; closed-loop simulation.
 
-:func:`run_live` drives a :class:`~fieldplan.plan.Controller` with two user callbacks: ``observe()``
+:func:`run_live` drives a controller (:class:`fieldplan.planning.Controller`, the horizon planner) with two user callbacks: ``observe()``
 returns the tracked positions (or ``None``, or rows of NaN for bodies the tracker lost) and
 ``apply(segment)`` plays one segment on the hardware. A known measurement latency is bridged by
 predicting, on the model, the motion under the segments played since the frame was taken; a lost
@@ -31,7 +31,7 @@ import numpy as np
 
 from .actuator import Segment
 from .errors import FieldplanError
-from .plan import Controller
+from .planning import make_controller
 
 __all__ = ["run_live", "closed_loop", "LiveResult"]
 
@@ -336,7 +336,7 @@ def closed_loop(model, truth, bodies, workspace, starts, goals, *, limits=None, 
     check_placement(bodies, workspace, starts, "start")
     if not (0.0 <= drop_rate < 1.0):
         raise FieldplanError(f"closed_loop drop_rate must be in [0, 1), got {drop_rate!r}.")
-    ctrl = Controller(model, bodies, workspace, goals, limits=limits, settings=settings)
+    ctrl = make_controller(model, bodies, workspace, goals, limits=limits, settings=settings)
     gen = np.random.default_rng(rng)
     sim_rng, drop_rng = gen.spawn(2) if hasattr(gen, "spawn") else (gen, np.random.default_rng(gen.integers(2**31)))
     rmin = float(min(b.radius for b in bodies))

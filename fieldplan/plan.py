@@ -1,21 +1,15 @@
-"""Planning: the controller that turns routes and the step program into segments, and open-loop plans.
+"""Open-loop plans, capability curves, and the earlier route-tracking step controller.
 
-:class:`Controller` is the receding-horizon controller. Each period it takes measured positions,
-evaluates the actuator's field basis there, advances a reference point along each body's route,
-solves the step program (:mod:`fieldplan.control`) and returns the first period's segments. It
-watches every body's progress along its route and, when bodies stall (shared fields often have
-local minima where no input improves every body at once), recovers by moving one stalled body while
-the others hold where they are, then by a longer horizon, then by a different route, and reports
-what it did in :attr:`Controller.stalls`. When the fields lack the rank to move all bodies in one
-period (fewer independent inputs than twice the bodies, in linear mode), the recovery plays
-Lie-bracket cycles: four periods ``u_a, u_b, -u_a, -u_b`` whose net motion is the bracket
-``T^2 [f_a, f_b]`` of two fields, a direction no single period offers - slow (second order) but it
-moves bodies the counting rule says cannot be moved independently.
-
-:func:`plan` iterates the controller on the model (open loop) until every body is within tolerance
+:func:`plan` iterates a controller on the model (open loop) until every body is within tolerance
 of its goal at the same time, or a time limit; the :class:`PlanResult` says which body did not
-arrive and why. Bad input (a start or goal outside the free space, goals closer than two radii) is a
-:class:`~fieldplan.errors.WorkspaceError` naming the body.
+arrive and why. The controller is the horizon planner (:class:`fieldplan.planning.Controller`:
+receding-horizon sequential convex programming on each body's cost-to-go map) unless
+``PlanSettings(method="step")`` asks for :class:`StepController`, the earlier controller kept for
+comparison: it advances a reference point along each body's A* route, solves a one-period step
+program (:mod:`fieldplan.control`) and recovers from stalls by moving subsets of bodies, looking
+further ahead, re-routing and playing Lie-bracket cycles. Bad input (a start or goal outside the
+free space, goals closer than two radii) is a :class:`~fieldplan.errors.WorkspaceError` naming the
+body.
 
 Examples
 --------
@@ -38,194 +32,20 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .actuator import FieldBasis, Segment, _group_bodies
+from .actuator import Segment
 from .control import (StepData, StepProgram, pair_slots, point_at, polyline_arclength, project_to_route,
                       reference_points, variation_length)
-from .errors import FieldplanError, WorkspaceError
+from .errors import WorkspaceError
+from .planning import Controller, PlanSettings, check_goals, make_controller
+from .planning.base import ControllerBase, _directional_speed
 from .routes import plan_routes, route_length
 
-__all__ = ["PlanSettings", "Controller", "plan", "PlanResult", "capability_curve", "check_goals"]
+__all__ = ["PlanSettings", "Controller", "StepController", "plan", "PlanResult", "capability_curve", "check_goals"]
 
 
-@dataclass
-class PlanSettings:
-    """Settings of the controller and the planner (SI units; ``None`` picks a default).
-
-    Parameters
-    ----------
-    period : float, optional
-        Control period, s. Default: chosen from the speeds so the median body moves about one
-        trust radius per period (rounded to the hardware time step, at least the minimum dwell).
-    horizon : int
-        Periods the step program looks ahead.
-    tolerance : float, optional
-        Arrival radius, m (default each body's radius).
-    time_limit : float, optional
-        Longest plan, s (default: five times the sum over bodies of route length / available speed,
-        plus 50 periods: enough to move the bodies one after another).
-    clearance : float, optional
-        Extra distance kept from walls by routes and between bodies by the separation constraint, m
-        (default half the largest radius).
-    tracking_weight, effort_weight, smoothness_weight : float
-        Objective weights (positions in trust radii, inputs in fractions of their span).
-    slack_weight : float
-        Exact-penalty weight of the soft constraints.
-    progress_weight : float
-        Reward of the common progress along the routes, relative to the tracking cost of a full
-        step (small: the program takes the largest step all bodies can follow closely).
-    trust_fraction : float
-        Trust radius per period as a fraction of the fields' variation length ``|f| / |grad f|``.
-    max_trust : float, optional
-        Largest trust radius, m (default 1/20 of the workspace's larger side).
-    route_resolution : float, optional
-        Route grid cell, m (default :func:`fieldplan.routes.default_resolution`).
-    field_aware_routes : bool
-        Route edge cost = time at the actuator's available speed instead of length.
-    assign_goals : bool
-        Bodies of the same kind may swap goals (minimum total route cost).
-    max_steps : int
-        Most control periods of a plan.
-    stall_window : int
-        Periods over which progress is measured to detect a stall.
-    stall_progress : float
-        A body stalls when over the window it progresses less than this fraction of what the fields
-        could do for it alone, or less than a third of what the step program planned for it.
-    relinearise : bool
-        With ``horizon > 1``, evaluate the fields at the predicted positions of later periods.
-    backend : {"osqp", "cvxpy"}
-        Step program back end (see :mod:`fieldplan.control`).
-    solver : str, optional
-        cvxpy solver name for the ``"cvxpy"`` back end.
-    separation_slots : int, optional
-        Room for pair constraints per period (default all pairs up to 4 n).
-    timeshare_rounds : int
-        In timeshare mode, play each period's primitive mix in this many shorter rounds (fewer when
-        the hardware time step does not divide the period, one with a minimum dwell), so that a body
-        strays less from the straight path between period ends.
-    arrival_margin : float
-        Once every body is within tolerance, the open-loop plan keeps steering (for at most
-        ``settle_steps`` periods) until every body is within ``arrival_margin * tolerance``: a plan
-        that stops exactly on the arrival radius would pass or fail its noisy trials by chance.
-    settle_steps : int
-        Most extra periods spent on that settling.
-    """
-
-    period: float | None = None
-    horizon: int = 1
-    tolerance: float | None = None
-    time_limit: float | None = None
-    clearance: float | None = None
-    tracking_weight: float = 1.0
-    effort_weight: float = 1e-3
-    smoothness_weight: float = 1e-2
-    slack_weight: float = 1e3
-    progress_weight: float = 1.0
-    trust_fraction: float = 0.2
-    max_trust: float | None = None
-    route_resolution: float | None = None
-    field_aware_routes: bool = False
-    assign_goals: bool = False
-    max_steps: int = 3000
-    stall_window: int = 8
-    stall_progress: float = 0.05
-    relinearise: bool = True
-    backend: str = "osqp"
-    solver: str | None = None
-    separation_slots: int | None = None
-    timeshare_rounds: int = 4
-    arrival_margin: float = 0.5
-    settle_steps: int = 30
-
-    def __post_init__(self):
-        def positive(key, allow_none=True):
-            v = getattr(self, key)
-            if v is None and allow_none:
-                return
-            if not (isinstance(v, (int, float, np.number)) and not isinstance(v, bool) and np.isfinite(v) and v > 0):
-                raise FieldplanError(f"PlanSettings {key} must be a finite number > 0, got {v!r}.")
-
-        for key in ("period", "tolerance", "time_limit", "max_trust", "route_resolution"):
-            positive(key)
-        for key in ("tracking_weight", "slack_weight", "progress_weight", "trust_fraction", "stall_progress"):
-            positive(key, allow_none=False)
-        for key in ("effort_weight", "smoothness_weight"):
-            v = getattr(self, key)
-            if not (np.isfinite(v) and v >= 0):
-                raise FieldplanError(f"PlanSettings {key} must be a finite number >= 0, got {v!r}.")
-        if self.clearance is not None and not (np.isfinite(self.clearance) and self.clearance >= 0):
-            raise FieldplanError(f"PlanSettings clearance must be >= 0 m, got {self.clearance!r}.")
-        for key in ("horizon", "max_steps", "stall_window", "timeshare_rounds"):
-            v = getattr(self, key)
-            if not (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= 1):
-                raise FieldplanError(f"PlanSettings {key} must be an integer >= 1, got {v!r}.")
-        if not (0 < self.arrival_margin <= 1):
-            raise FieldplanError(f"PlanSettings arrival_margin must be in (0, 1], got {self.arrival_margin!r}.")
-        if not (isinstance(self.settle_steps, (int, np.integer)) and self.settle_steps >= 0):
-            raise FieldplanError(f"PlanSettings settle_steps must be an integer >= 0, got {self.settle_steps!r}.")
-        if self.backend not in ("osqp", "cvxpy"):
-            raise FieldplanError(f"PlanSettings backend must be 'osqp' or 'cvxpy', got {self.backend!r}.")
-
-    @classmethod
-    def from_dict(cls, d):
-        """Settings from a mapping; unknown keys are errors (naming the key and the known ones)."""
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(d) - known)
-        if unknown:
-            raise FieldplanError(f"PlanSettings: unknown key(s) {unknown}; known keys are {sorted(known)}.")
-        return cls(**dict(d))
-
-    def to_dict(self):
-        return dataclasses.asdict(self)
-
-
-def check_goals(bodies, workspace, goals):
-    """Raise :class:`WorkspaceError` naming the body if a goal is outside its free space or two goals
-    are closer than the sum of the two radii.
-
-    Returns
-    -------
-    ndarray, shape (n, 2)
-        The goals as floats, m.
-    """
-    g = np.asarray(goals, dtype=float)
-    n = len(bodies)
-    if g.shape != (n, 2):
-        raise WorkspaceError(f"goals must have shape ({n}, 2) - one (x, y) in m per body - got {g.shape}.")
-    if not np.all(np.isfinite(g)):
-        bad = np.flatnonzero(~np.all(np.isfinite(g), axis=1)).tolist()
-        raise WorkspaceError(f"goal of body {bad[0]} ({bodies[bad[0]].name}) is not finite: {g[bad[0]].tolist()}.")
-    for i, b in enumerate(bodies):
-        if not workspace.contains(g[i:i + 1], b.radius)[0]:
-            where = "inside an obstacle or a wall" if not workspace.contains(g[i:i + 1], 0.0)[0] else \
-                "closer to a wall than its radius"
-            raise WorkspaceError(
-                f"goal of body {i} ({b.name}) at ({g[i, 0]:.6g}, {g[i, 1]:.6g}) m is {where}: its centre must be at "
-                f"least its radius {b.radius:g} m from every wall and obstacle.")
-    r = np.array([b.radius for b in bodies])
-    if n > 1:
-        d = np.linalg.norm(g[:, None] - g[None], axis=2)
-        gap = d - (r[:, None] + r[None])
-        np.fill_diagonal(gap, np.inf)
-        i, j = np.unravel_index(np.argmin(gap), gap.shape)
-        if gap[i, j] < 0:
-            i, j = min(i, j), max(i, j)
-            raise WorkspaceError(
-                f"goals of body {i} ({bodies[i].name}) and body {j} ({bodies[j].name}) are {d[i, j]:.3g} m apart, "
-                f"closer than their radii sum {r[i] + r[j]:.3g} m: both cannot be there at once.")
-    return g
-
-
-def _directional_speed(basis, directions, lower, upper):
-    """Speed each body alone could reach along its own unit direction, m/s, shape (n,)."""
-    proj = np.einsum("knc,nc->kn", basis.fields, directions)
-    drift = np.einsum("nc,nc->n", basis.drift, directions)
-    if basis.mode == "linear":
-        return drift + np.sum(np.maximum(lower[:, None] * proj, upper[:, None] * proj), axis=0)
-    return drift + np.maximum(0.0, (proj * (upper[:, None] > 0)).max(axis=0))
-
-
-class Controller:
-    """Receding-horizon controller: positions in, one period of segments out.
+class StepController(ControllerBase):
+    """The earlier route-tracking controller (``PlanSettings(method="step")``): positions in, one
+    period of segments out.
 
     Parameters
     ----------
@@ -259,45 +79,22 @@ class Controller:
     >>> act = SourceArray([[0, 0], [1e-3, 0], [0, 1e-3]], force=2e-12)
     >>> ws = fieldplan.Workspace((0, 0, 1e-3, 1e-3))
     >>> bead = fieldplan.Body("bead", radius=5e-6, density=1050.0)
-    >>> ctrl = Controller(act, [bead], ws, [[2e-4, 2e-4]])
+    >>> ctrl = StepController(act, [bead], ws, [[2e-4, 2e-4]])
     >>> segs = ctrl.step([[5e-4, 5e-4]], 0.0)
     >>> round(sum(s.duration for s in segs) / ctrl.period, 9)
     1.0
     """
 
     def __init__(self, actuator, bodies, workspace, goals, *, routes=None, limits=None, settings=None):
-        self.actuator = actuator
-        self.bodies = list(bodies)
-        if not self.bodies:
-            raise WorkspaceError("Controller needs at least one body.")
-        self.workspace = workspace
-        self.medium = workspace.medium
-        self.settings = settings if settings is not None else PlanSettings()
-        if isinstance(self.settings, dict):
-            self.settings = PlanSettings.from_dict(self.settings)
-        self.limits = limits
-        self.goals = check_goals(self.bodies, workspace, goals)
+        super().__init__(actuator, bodies, workspace, goals, limits=limits, settings=settings)
+        if self.settings.horizon is None:
+            # The step controller looks one period ahead unless told otherwise.
+            self.settings = dataclasses.replace(self.settings, horizon=1)
         self._given_routes = routes
-        self.n = len(self.bodies)
-        self.radii = np.array([b.radius for b in self.bodies])
-        s = self.settings
-        self.tolerance = np.full(self.n, s.tolerance) if s.tolerance else self.radii.copy()
-        self.clearance = float(s.clearance) if s.clearance is not None else 0.5 * float(self.radii.max())
-        self.ready = False
-        self.stalls = []
-        self.notes = []
-        self.records = []
         self.route_plan = None
-        self.gave_up = None
-        self._groups = _group_bodies(self.bodies)
         self._graphs = {}
 
     # -- set-up ----------------------------------------------------------------------------------------
-    def _basis(self, xy_sets):
-        """Field basis at several position sets of all bodies, in one vectorised call."""
-        xy = np.concatenate(xy_sets, axis=0)
-        return self.actuator.basis(self.bodies * len(xy_sets), self.medium, xy)
-
     def prepare(self, positions, t=0.0):
         """Routes, period, scales and the step program, from the first positions (m)."""
         p = self._check_positions(positions)
@@ -337,41 +134,7 @@ class Controller:
         self._cum = [polyline_arclength(r) for r in routes]
         self._s = np.zeros(self.n)
         self._s_best = np.zeros(self.n)
-        # -- basis, speeds and the period
-        B = self.actuator.basis(self.bodies, self.medium, p)
-        self.mode = B.mode
-        self.channels = B.channels
-        self.K = B.size
-        self._setup_inputs(B)
-        delta, speed = self._trust_and_speed(p, B)
-        self.initial_speed = speed
-        if s.period:
-            T = float(s.period)
-        else:
-            ok = speed > 0
-            T = float(np.median(delta[ok] / speed[ok])) if ok.any() else 1.0
-        T = self._round_period(T)
-        self.period = T
-        self.length_unit = float(np.median(delta))
-        self._rounds = 1
-        if self.mode == "timeshare":
-            lim = self.limits
-            R = int(s.timeshare_rounds)
-            ts = lim.time_step if lim is not None else None
-            dwell = lim is not None and (lim.min_dwell or any(lim.get(c.name).min_dwell for c in self.channels))
-            # Rounds must stay whole numbers of hardware steps, and fine enough (10 steps or more)
-            # that rounding each slice to the step does not swamp the mix.
-            while R > 1 and (dwell or (ts and (abs(T / R / ts - np.round(T / R / ts)) > 1e-9 or T / R < 10 * ts))):
-                R -= 1
-            self._rounds = R
-        self._q_res = np.zeros(self.K)
-        # -- limits that depend on the period
-        self._setup_limits()
-        self.blocked = None
-        if np.all(self._hi <= self._lo):
-            self.blocked = ("no input is left to plan with: every primitive breaks the declared hardware limits "
-                            "(see notes)" if self.mode == "timeshare" else
-                            "no input is left to plan with: the declared limits pin every channel")
+        delta, speed = self._prepare_inputs(p)
         self._prev = self._idle_rate.copy()
         self._programs = {}
         self._H = s.horizon
@@ -396,160 +159,7 @@ class Controller:
         v = np.where(speed > 0, speed, np.nan)
         with np.errstate(invalid="ignore"):
             est = np.nansum(lengths / v) if np.any(np.isfinite(v)) else np.inf
-        self.time_limit = float(s.time_limit) if s.time_limit else float(5.0 * est + 50 * T)
-
-    def _check_positions(self, positions):
-        p = np.asarray(positions, dtype=float)
-        if p.shape != (self.n, 2):
-            raise WorkspaceError(f"positions must have shape ({self.n}, 2) in m, got {p.shape}.")
-        if not np.all(np.isfinite(p)):
-            bad = np.flatnonzero(~np.all(np.isfinite(p), axis=1)).tolist()
-            raise WorkspaceError(f"positions of bodies {bad} are not finite; run_live fills dropped rows by prediction.")
-        return p
-
-    def _setup_inputs(self, B):
-        chans = self.channels
-        lim = self.limits
-        if B.mode == "linear":
-            if lim is not None:
-                lo, hi = lim.bounds(chans)
-            else:
-                lo = np.array([c.lower for c in chans])
-                hi = np.array([c.upper for c in chans])
-            scale = np.maximum(np.maximum(np.abs(lo), np.abs(hi)), 1e-300)
-            self._scale = scale
-            self._lo, self._hi = lo / scale, hi / scale
-            self._idle_rate = np.clip(np.asarray(B.idle, float) / scale, self._lo, self._hi)
-        else:
-            self._scale = np.ones(self.K)
-            self._lo = np.zeros(self.K)
-            self._hi = np.ones(self.K)
-            self._idle_rate = np.zeros(self.K)
-            self._prims = np.array([pr.values for pr in B.primitives])     # (K, m)
-            self._idle_values = np.asarray(B.idle, float)
-            if lim is not None:
-                clo, chi = lim.bounds(chans)
-                bad = np.any((self._prims < clo - 1e-12 * np.abs(clo)) | (self._prims > chi + 1e-12 * np.abs(chi)), axis=1)
-                for k in np.flatnonzero(bad):
-                    self._hi[k] = 0.0
-                    self.notes.append(f"primitive {B.primitives[k].name!r} exceeds the declared channel limits: disabled")
-
-    def _round_period(self, T):
-        lim = self.limits
-        if lim is None:
-            return float(T)
-        dwell = [lim.min_dwell or 0.0] + [lim.get(c.name).min_dwell or 0.0 for c in self.channels]
-        T = max(T, max(dwell))
-        windows = [lim.get(c.name).rms_window for c in self.channels
-                   if lim.get(c.name).rms is not None and lim.get(c.name).rms_window]
-        ts = lim.time_step
-        if windows and self.settings.period is None:
-            # A window that is a whole number of periods makes the per-period RMS budget exact; with
-            # a hardware step the period must also be a whole number of steps.
-            W = min(windows)
-            if self.mode == "timeshare":
-                # Primitives play at full value within a period, so the mix only averages out over
-                # windows several periods long: keep four periods or more per window.
-                T = max(min(T, W / 4.0), max(dwell))
-            if W >= T:
-                m0 = int(np.ceil(W / T))
-                for m in range(m0, m0 + 50):
-                    cand = W / m
-                    if not ts or abs(cand / ts - np.round(cand / ts)) < 1e-9:
-                        T = cand
-                        break
-        if ts:
-            T = max(ts, np.round(T / ts) * ts)
-        return float(T)
-
-    def _setup_limits(self):
-        lim = self.limits
-        K, T = self.K, self.period
-        self._slew = None
-        self._rms = []          # (channel index, rms, group size or None for whole schedule)
-        self._sq_hist = []      # per-period mean squares, rows of (m,)
-        if lim is None:
-            return
-        dt = lim.time_step or T
-        if self.mode == "linear":
-            slew = np.full(K, np.inf)
-            for k, c in enumerate(self.channels):
-                cl = lim.get(c.name)
-                if cl.slew_rate is not None:
-                    slew[k] = cl.slew_rate * dt / self._scale[k]
-            self._slew = slew if np.isfinite(slew).any() else None
-        else:
-            for j, c in enumerate(self.channels):
-                cl = lim.get(c.name)
-                if cl.slew_rate is None:
-                    continue
-                allowed = cl.slew_rate * (lim.time_step or (lim.min_dwell or 0.0))
-                jump = np.abs(self._prims[:, j] - self._idle_values[j])
-                for k in np.flatnonzero((jump > allowed * (1 + 1e-9)) & (self._hi > 0)):
-                    self._hi[k] = 0.0
-                    self.notes.append(f"primitive {k} steps channel {c.name!r} by {jump[k]:g} {c.unit} from idle, more "
-                                      f"than its slew limit allows in one hardware step: disabled")
-        for j, c in enumerate(self.channels):
-            cl = lim.get(c.name)
-            if cl.rms is None:
-                continue
-            W = cl.rms_window
-            # Trailing-window budget, checked every period over the last g periods (this one
-            # included): sum of per-period mean squares <= total. In linear mode the input is
-            # constant over a period, so the windowed integral is piecewise linear in the window's
-            # start and peaks with one end on a period edge; such a window lies within
-            # g = ceil(W / T) periods, and T * (their sum) <= rms^2 W bounds every sliding window
-            # (exact when W is a multiple of T, which the automatic period arranges). A window
-            # shorter than a period then needs only q <= rms^2. In timeshare mode the values change
-            # within a period, so a window may catch the loud parts of both end periods: it touches
-            # at most ceil(W / T) + 1 periods, and the same integral bound over those is sufficient.
-            if W is None:
-                g, total = None, None
-            else:
-                g = max(1, int(np.ceil(W / T - 1e-9)))
-                if self.mode == "timeshare":
-                    g += 1
-                total = float(cl.rms) ** 2 * (W / T if g > 1 else 1.0)
-            # With a slew limit a budget that shrinks faster than the input may ramp down cannot be
-            # met, so such channels are held at their sustainable level instead.
-            capped = self.mode == "linear" and self._slew is not None and np.isfinite(self._slew[j])
-            self._rms.append((j, float(cl.rms), g, total, capped))
-
-    def _rms_bounds(self):
-        """Per-period bounds from the RMS budgets: (lo0, hi0, rows, rhs0, rhs_later) in program units."""
-        lo0, hi0 = self._lo.copy(), self._hi.copy()
-        lo1, hi1 = self._lo.copy(), self._hi.copy()
-        rows, rhs0, rhs1 = [], [], []
-        hist = np.asarray(self._sq_hist) if self._sq_hist else np.zeros((0, len(self.channels)))
-        budgets = []
-        self._budgets = budgets         # this period's mean-square budget per RMS channel, unit^2
-        for j, rms, g, total, capped in self._rms:
-            # The whole schedule so far must stay within the limit too (a plan shorter than the
-            # window is judged on its whole length).
-            budget = rms**2 * (len(hist) + 1) - hist[:, j].sum()
-            if g is not None:
-                used = hist[-(g - 1):, j].sum() if g > 1 and len(hist) else 0.0
-                budget = min(budget, total - used)
-            if capped:
-                budget = rms**2
-            budget = max(budget, 0.0)
-            budgets.append((j, budget))
-            if self.mode == "linear":
-                b = np.sqrt(budget) / self._scale[j]
-                lo0[j], hi0[j] = max(lo0[j], -b), min(hi0[j], b)
-                b1 = rms / self._scale[j]
-                lo1[j], hi1[j] = max(lo1[j], -b1), min(hi1[j], b1)
-            else:
-                idle2 = self._idle_values[j] ** 2
-                rows.append(self._prims[:, j] ** 2 - idle2)
-                rhs0.append(budget - idle2)
-                rhs1.append(rms**2 - idle2)
-        if self.mode == "linear":
-            # A budget below the idle value's own square cannot be met by any rate: keep the box non-empty.
-            for arr_lo, arr_hi in ((lo0, hi0), (lo1, hi1)):
-                clash = arr_lo > arr_hi
-                arr_lo[clash] = arr_hi[clash] = np.clip(0.0, self._lo[clash], self._hi[clash])
-        return lo0, hi0, lo1, hi1, (np.array(rows) if rows else None), np.array(rhs0), np.array(rhs1)
+        self.time_limit = float(s.time_limit) if s.time_limit else float(5.0 * est + 50 * self.period)
 
     def _program(self, H):
         m = sum(1 for _ in self._rms) if self.mode == "timeshare" else 0
@@ -561,24 +171,6 @@ class Controller:
                 slew=self._slew is not None, timeshare=self.mode == "timeshare", backend=s.backend,
                 solver=s.solver, eps=1e-4 if s.backend == "osqp" else 1e-5)
         return self._programs[key]
-
-    def _trust_and_speed(self, p, B=None, eps=None):
-        eps = eps if eps is not None else 1e-3 * self.span
-        Bs = self._basis([p, p + [eps, 0.0], p + [0.0, eps]])
-        n = self.n
-        f = Bs.fields
-        scale = self._scale[:, None, None]
-        ell = variation_length(f[:, :n] * scale, f[:, n:2 * n] * scale, f[:, 2 * n:] * scale, eps)
-        floor = 0.5 * float(self.tolerance.min())
-        delta = np.clip(self.settings.trust_fraction * ell, floor, self.max_trust)
-        B0 = B if B is not None else self._slice_basis(Bs, 0)
-        best = np.max(_speeds_8(B0, self._lo * self._scale, self._hi * self._scale), axis=1)
-        return delta, best
-
-    @staticmethod
-    def _slice_basis(B, j, n=None):
-        n = n or B.fields.shape[1] // 3
-        return dataclasses.replace(B, fields=B.fields[:, j * n:(j + 1) * n], drift=B.drift[j * n:(j + 1) * n])
 
     # -- the period ------------------------------------------------------------------------------------
     def step(self, positions, t):
@@ -1069,138 +661,6 @@ class Controller:
         self.stalls.append(f"{head}; gave body {b} a new field-aware route ({route_length(r):.3g} m)")
 
     # -- output ------------------------------------------------------------------------------------------
-    def _segments(self, rate, t):
-        T = self.period
-        lim = self.limits
-        if self.mode == "linear":
-            u = rate * self._scale
-            lo = np.array([c.lower for c in self.channels])
-            hi = np.array([c.upper for c in self.channels])
-            return [Segment(t, T, np.clip(u, lo, hi), "mix")]
-        w = np.clip(rate, 0.0, 1.0) * T
-        ts = lim.time_step if lim is not None else None
-        dwell = 0.0
-        if lim is not None:
-            dwell = max([lim.min_dwell or 0.0] + [lim.get(c.name).min_dwell or 0.0 for c in self.channels])
-        B = FieldBasis("timeshare", np.zeros((self.K, 1, 2)), np.zeros((1, 2)), self.channels,
-                       primitives=tuple(self._prim_objs()), idle=self._idle_values)
-        R = self._rounds
-        segs = []
-        for j in range(R):
-            # The same mix played in R shorter rounds: excursions within a period shrink R-fold.
-            wr = w / R
-            if ts:
-                # Error diffusion: what rounding to the hardware step takes from one round is given
-                # back in the next, so the mix played over time is the one planned.
-                target = wr + self._q_res
-                wr = np.maximum(np.round(target / ts) * ts, 0.0)
-                while wr.sum() > T / R * (1 + 1e-12):
-                    k = int(np.argmax(wr))
-                    wr[k] -= ts
-                self._q_res = np.clip(target - wr, -ts, ts)
-            if dwell:
-                wr[wr < dwell * (1 - 1e-9)] = 0.0
-            segs += B.to_segments(wr, T / R, start=t + j * T / R, min_duration=0.0)
-        if ts:
-            # Keep segment boundaries on the hardware grid (to_segments drops sub-step round-off).
-            fixed, tt = [], t
-            for sg in segs:
-                d = float(np.round(sg.duration / ts) * ts)
-                if d <= 0:
-                    continue
-                fixed.append(Segment(tt, d, sg.values, sg.label))
-                tt += d
-            segs = fixed
-        return segs
-
-    def _mean_squares(self, segs):
-        """Mean square of each channel over one period of ``segs``, unit^2, shape (m,)."""
-        sq = np.zeros(len(self.channels))
-        for sg in segs:
-            sq += np.asarray(sg.values, dtype=float) ** 2 * sg.duration
-        return sq / self.period
-
-    def _fit_rms(self, rate, t):
-        """Segments of ``rate`` that keep this period within every RMS budget.
-
-        The step program meets the budgets only to solver tolerance, and in timeshare mode rounding
-        the slices to the hardware step (with error diffusion) may play a little more of a loud
-        primitive than planned; either could push a sliding window over its limit. Here the played
-        mean squares are checked against the budgets and, where one is exceeded, the loudest
-        contributing primitive is shortened (timeshare) or the channel scaled back (linear) until
-        it fits.
-        """
-        q_res = self._q_res.copy()
-        segs = self._segments(rate, t)
-        if not self._rms:
-            return segs
-        budgets = getattr(self, "_budgets", [])
-        rate = np.array(rate, dtype=float)
-        ts = self.limits.time_step if self.limits is not None else None
-        for _ in range(4 * self.K + 20):
-            q = self._mean_squares(segs)
-            over = [(j, q[j] - b) for j, b in budgets if q[j] > b * (1 + 1e-12) + 1e-300]
-            if not over:
-                return segs
-            j, excess = max(over, key=lambda e: e[1] / max(q[e[0]], 1e-300))
-            if self.mode == "linear":
-                # Round-off only (the rates are clipped to the budget's box): scale the channel back.
-                b = dict(budgets)[j]
-                u = rate[j] * self._scale[j]
-                rate[j] = np.sign(u) * np.sqrt(b) / self._scale[j] * (1 - 1e-12)
-            else:
-                coef = self._prims[:, j] ** 2 - self._idle_values[j] ** 2
-                cand = np.flatnonzero((coef > 0) & (rate > 0))
-                if not len(cand):
-                    break
-                k = cand[np.argmax(coef[cand])]
-                cut = excess / coef[k]
-                if ts:
-                    cut = max(cut, ts / self.period)
-                rate[k] = max(rate[k] - cut * (1 + 1e-9), 0.0)
-            self._q_res = q_res.copy()
-            segs = self._segments(rate, t)
-        self.notes.append(f"t = {t:.4g} s: could not fit the period's input within the RMS budget of channel "
-                          f"{self.channels[over[0][0]].name!r}")
-        return segs
-
-    def _prim_objs(self):
-        if not hasattr(self, "_prim_cache"):
-            self._prim_cache = tuple(self.actuator.primitives())
-        return self._prim_cache
-
-    def _record_rms(self, segs):
-        if not self._rms:
-            return
-        self._sq_hist.append(self._mean_squares(segs))
-
-    def predict(self, positions, segments, substeps=4):
-        """Positions after ``segments`` on the model (classical RK4, no noise), m, shape (n, 2).
-
-        Used by the live loop to bridge measurement latency and dropped frames.
-        """
-        x = np.array(positions, dtype=float)
-        for sg in segments:
-            u = np.asarray(sg.values, dtype=float)
-            dt = sg.duration / substeps
-            for _ in range(substeps):
-                k1 = self._velocity(x, u)
-                k2 = self._velocity(x + 0.5 * dt * k1, u)
-                k3 = self._velocity(x + 0.5 * dt * k2, u)
-                k4 = self._velocity(x + dt * k3, u)
-                x = x + dt / 6.0 * (k1 + 2 * k2 + 2 * k3 + k4)
-        return x
-
-    def _velocity(self, xy, u):
-        out = np.empty_like(xy)
-        for body, idx in self._groups:
-            out[idx] = self.actuator.velocity(body, self.medium, xy[idx], u)
-        return out
-
-    def arrived(self, positions, margin=1.0):
-        """Whether each body is within ``margin`` times its tolerance of its goal, bool (n,)."""
-        return np.linalg.norm(np.asarray(positions, float) - self.goals, axis=1) <= margin * self.tolerance
-
     def body_reasons(self, positions):
         """Why each body that has not arrived has not, list of str or None."""
         p = np.asarray(positions, float)
@@ -1228,16 +688,6 @@ class Controller:
             else:
                 out.append(f"still {err[i]:.3g} m from its goal when the plan stopped")
         return out
-
-
-def _speeds_8(basis, lower, upper):
-    dirs = np.array([[1, 0], [1, 1], [0, 1], [-1, 1], [-1, 0], [-1, -1], [0, -1], [1, -1]], dtype=float)
-    dirs /= np.linalg.norm(dirs, axis=1, keepdims=True)
-    proj = np.einsum("knc,dc->knd", basis.fields, dirs)
-    drift = basis.drift @ dirs.T
-    if basis.mode == "linear":
-        return drift + np.sum(np.maximum(lower[:, None, None] * proj, upper[:, None, None] * proj), axis=0)
-    return drift + np.maximum(0.0, proj.max(axis=0))
 
 
 @dataclass
@@ -1338,7 +788,7 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
     bodies = list(bodies)
     starts = np.asarray(starts, dtype=float)
     check_placement(bodies, workspace, starts, "start")
-    ctrl = Controller(actuator, bodies, workspace, goals, limits=limits, settings=settings)
+    ctrl = make_controller(actuator, bodies, workspace, goals, limits=limits, settings=settings)
     ctrl.prepare(starts)
     T = ctrl.period
     rmin = float(ctrl.radii.min())

@@ -98,18 +98,19 @@ def test_timeshare_mode_on_a_non_affine_actuator():
 
 
 def test_longer_horizon_and_cvxpy_backend_plan_too():
-    for settings in (PlanSettings(horizon=3), PlanSettings(backend="cvxpy")):
+    for settings in (PlanSettings(horizon=3), PlanSettings(method="step", horizon=3),
+                     PlanSettings(method="step", backend="cvxpy")):
         res = plan(ACT, [BEAD] * 2, WS, STARTS3[:2], GOALS3[:2], settings=settings)
         assert res.success, (settings, res.message)
 
 
 def test_stalls_are_detected_recovered_and_reported():
     """Six bodies on 16 fields with goals 250 um apart: bodies block each other's progress; the
-    controller reports each stall and what it did, and still brings everyone in."""
+    step controller reports each stall and what it did, and still brings everyone in."""
     rng = 5
     starts = WS.sample(6, 2e-5, rng, separation=2.5e-4)
     goals = WS.sample(6, 2e-5, rng + 100, separation=2.5e-4)
-    res = plan(ACT, [BEAD] * 6, WS, starts, goals)
+    res = plan(ACT, [BEAD] * 6, WS, starts, goals, settings=PlanSettings(method="step"))
     assert res.stalls, "expected this task to stall somewhere"
     assert all("stalled" in s for s in res.stalls)
     assert any(("moved bodies" in s) or ("looked" in s) or ("route" in s) for s in res.stalls)
@@ -117,7 +118,7 @@ def test_stalls_are_detected_recovered_and_reported():
 
 
 def test_more_bodies_than_the_counting_rule_via_bracket_cycles():
-    """K = 3 fields, 2 bodies: the basis has rank 3 < 2N = 4, so no single period can move both
+    """The step controller's explicit bracket cycles. K = 3 fields, 2 bodies: the basis has rank 3 < 2N = 4, so no single period can move both
     bodies independently (the counting rule: K inputs steer at most K/2 bodies in one step). Over
     several periods the Lie bracket of two fields, played as the cycle u_a, u_b, -u_a, -u_b, adds the
     missing direction (Murray, Li & Sastry 1994, ch. 7), and both bodies arrive."""
@@ -127,7 +128,7 @@ def test_more_bodies_than_the_counting_rule_via_bracket_cycles():
     goals = starts + [[8e-5, 4e-5], [-5e-5, 9e-5]]
     B = act.basis([BEAD] * 2, WS.medium, starts)
     assert np.linalg.matrix_rank(B.matrix()) == 3
-    res = plan(act, [BEAD] * 2, WS, starts, goals, settings=PlanSettings(time_limit=6000.0))
+    res = plan(act, [BEAD] * 2, WS, starts, goals, settings=PlanSettings(method="step", time_limit=6000.0))
     assert res.success, res.message
     assert any("Lie-bracket" in s for s in res.stalls)
     assert res.metrics["contacts"] == 0

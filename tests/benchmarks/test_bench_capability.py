@@ -1,22 +1,26 @@
-"""Benchmark: capability curve of every built-in actuator - success rate and time to goal against N.
+"""Benchmark: how many bodies each built-in actuator brings home - fieldplan against its two peers.
 
-Run: .venv/bin/pytest -q -s tests/benchmarks/test_bench_capability.py -o addopts=""
+Run: ``make bench`` (or ``.venv/bin/pytest -q -s tests/benchmarks/test_bench_capability.py -o addopts=""``).
 
-For each built-in actuator (coil array with fixed-moment spheres, vibrating plate with sand grains in
-air, electrode array with a polystyrene bead / cell mix) and increasing numbers of bodies N, seeded random tasks
-(starts and goals drawn in the free space, 4 radii apart) are run closed loop
-(:func:`fieldplan.live.closed_loop`: Brownian motion, tracking noise, declared hardware limits).
-One table per actuator: success rate (every body truly within tolerance and no body-body contact on
-the way), median time to goal over the successes (simulated s), median
-wall time per trial, the commonest failure kinds, and the baselines measured in the same run:
+For each built-in actuator case and number of bodies N, seeded random tasks (starts and goals drawn
+in the free space, 4 radii apart; for the electrode array, goals where each body alone can be
+held, by :func:`fieldplan.steer.steerable`) run closed loop on the same simulator (Brownian motion,
+tracking noise, contacts), with the same period and time limit, by:
 
-- the one-step counting-rule bound on N: K/2 for an affine actuator with K inputs (linear mode),
-  (M - 1)/2 for M time-shared primitives (convex weights: M - 1 free directions);
-- the steerable fraction of random configurations from :func:`fieldplan.steer.count_curve`.
+- **fieldplan** - :func:`fieldplan.live.closed_loop` with the horizon planner, under the declared
+  hardware limits, and again with no limits;
+- **greedy** - the one-step primitive choice (:func:`peers.greedy_step`);
+- **least squares** - per-period bounded least squares (:func:`peers.least_squares_step`).
 
-Default (reduced) size: 4 trials per N, N in {1, 2, 3}; ``FIELDPLAN_FULL=1``: 20 trials, N in
-{1, 2, 3, 4, 6}. Times are printed, never asserted; the correctness checks are that a reported
-success has every true position inside tolerance, no contact and a finite time to goal.
+Success = every body truly within tolerance at the end and no body-body contact on the way. Each
+row prints ``successes/trials``, the 95 % Wilson interval of fieldplan's rate, the median time to
+goal (simulated s) and median wall time per trial, beside the one-step counting bound and the
+steerable fraction of random configurations (:func:`fieldplan.steer.count_curve`). The peers know no
+RMS or slew limits; when a schedule they played breaks the declared limits the row says how often.
+
+Default (reduced) size: 3 trials per N at a few N per case; ``FIELDPLAN_FULL=1``: 20 trials and
+more N. Times are printed, never asserted; the checks are that a reported success really has every
+true position inside tolerance and no contact.
 """
 
 import collections
@@ -24,6 +28,7 @@ import os
 import time
 
 import numpy as np
+import pytest
 import shapely
 
 from actuators.acoustic import Plate
@@ -33,11 +38,13 @@ from actuators.magnetic import Coil, CoilArray
 from fieldplan import Body, ChannelLimit, HardwareLimits, Shell, Workspace, air, circle, water
 from fieldplan.live import closed_loop
 from fieldplan.plan import PlanSettings
-from fieldplan.steer import basis_function, count_curve
+from fieldplan.planning import Controller
+from fieldplan.steer import _wilson, basis_function, count_curve, steerable
+
+from peers import PEERS, run_peer
 
 FULL = os.environ.get("FIELDPLAN_FULL") == "1"
-TRIALS = 20 if FULL else 4
-NS = (1, 2, 3, 4, 6) if FULL else (1, 2, 3)
+TRIALS = 20 if FULL else 3
 COUNT_TRIALS = 40 if FULL else 20
 
 
@@ -53,26 +60,54 @@ def coil_case():
                             time_step=1e-3)
     return dict(name="coil array (6 coils, fixed moments)", actuator=arr, workspace=ws,
                 bodies=lambda n: [kinds[i % 2] for i in range(n)], limits=limits,
-                settings=PlanSettings(tolerance=100e-6, clearance=50e-6), tracking=5e-6, region=None)
+                settings=PlanSettings(tolerance=100e-6, clearance=50e-6), tracking=5e-6, region=None,
+                Ns=(1, 2, 3, 4, 6) if FULL else (2, 3, 4))
+
+
+def soft_case():
+    """Eight coils on a 6 mm ring under a 3 mm dish, soft (linear) magnetic beads of two sizes."""
+    coils = [Coil((6e-3 * np.cos(a), 6e-3 * np.sin(a), -3e-3), (0, 0, 1), radius=3e-3, turns=300, length=4e-3,
+                  current_limit=2.0) for a in np.linspace(0, 2 * np.pi, 8, endpoint=False)]
+    arr = CoilArray(coils, 0.0, bead_models="linear")
+    ws = Workspace(circle((0.0, 0.0), 3e-3), medium=water(294.15))
+    kinds = [Body("bead-9um", radius=4.5e-6, density=1800.0, susceptibility=1.0),
+             Body("bead-3um", radius=1.5e-6, density=1800.0, susceptibility=2.0)]
+    limits = HardwareLimits({c.name: ChannelLimit(c.lower, c.upper, rms=1.5, rms_window=10.0) for c in arr.channels},
+                            time_step=1e-3)
+    return dict(name="coil array (8 coils, soft beads of two sizes)", actuator=arr, workspace=ws,
+                bodies=lambda n: [kinds[i % 2] for i in range(n)], limits=limits,
+                settings=PlanSettings(tolerance=40e-6, clearance=15e-6, time_limit=400.0), tracking=1e-6,
+                region=shapely.Point(0, 0).buffer(2.2e-3), Ns=(1, 2, 3, 4) if FULL else (2, 3))
+
+
+def _plate(n_tones, band):
+    return Plate(0.2, 0.2, 1e-3, material="aluminium", edges="free", supports=[(23e-3, -17e-3)],
+                 excitation="base", band=band, n_tones=n_tones, peak_displacement=30e-6)
 
 
 def plate_case():
-    """scenarios/plate.yaml: 200 mm free aluminium plate, off-centre post, 24 tones; tasks drawn in the
-    central 120 mm square and capped at 300 s (the reduced run would otherwise take many minutes)."""
-    plate = Plate(0.2, 0.2, 1e-3, material="aluminium", edges="free", supports=[(23e-3, -17e-3)],
-                  excitation="base", band=(150.0, 1500.0), n_tones=24, peak_displacement=30e-6)
+    """scenarios/plate.yaml: 200 mm free aluminium plate, off-centre post, 24 tones; tasks in the central
+    120 mm square, capped at 300 s."""
     ws = Workspace((-0.09, -0.09, 0.09, 0.09), medium=air(295.15))
     grain = Body("sand-1mm", radius=0.5e-3, density=2600.0)
-    return dict(name="plate (24 tones, sand in air)", actuator=plate, workspace=ws, bodies=lambda n: [grain] * n,
-                limits=HardwareLimits(time_step=0.02, min_dwell=0.04),
-                settings=PlanSettings(tolerance=3e-3, clearance=1e-3, time_limit=300.0), tracking=20e-6,
-                region=shapely.box(-0.06, -0.06, 0.06, 0.06))
+    return dict(name="plate (24 tones, sand in air)", actuator=_plate(24, (150.0, 1500.0)), workspace=ws,
+                bodies=lambda n: [grain] * n, limits=HardwareLimits(time_step=0.02, min_dwell=0.04),
+                settings=PlanSettings(tolerance=3e-3, clearance=1e-3, time_limit=300.0, replan_every=4),
+                tracking=20e-6,
+                region=shapely.box(-0.06, -0.06, 0.06, 0.06), Ns=(1, 2, 3, 4) if FULL else (2, 3))
+
+
+def plate64_case():
+    """The same plate with 64 tones from 150 Hz to 3 kHz: a one-step limit near N = 6."""
+    case = plate_case()
+    case.update(name="plate (64 tones 150-3000 Hz, sand in air)", actuator=_plate(64, (150.0, 3000.0)),
+                Ns=(4, 6, 8, 12) if FULL else (4, 6, 8))
+    return case
 
 
 def electrode_case():
     """scenarios/electrodes.yaml chip (3 x 3 pads, 3 frequencies); bodies alternate polystyrene bead
-    (negative DEP) and cell (positive DEP), the bead first. Random goals often ask a bead to climb the
-    field (off a pad centre), which the DEP physics does not allow: expect low rates."""
+    (negative DEP) and cell (positive DEP), the bead first; goals where each body alone can be held."""
     arr = ElectrodeArray(pad_array(3, 3, 80e-6, 20e-6), [1e5, 1e6, 1e7], voltage_limit=1.5, grid_points=128,
                          margin=20e-6)
     ws = Workspace((-140e-6, -140e-6, 140e-6, 140e-6), medium=water(295.15, conductivity=10e-3))
@@ -82,9 +117,9 @@ def electrode_case():
                 shell=Shell(thickness=8e-9, membrane_permittivity=6.0, membrane_conductivity=1e-7,
                             interior_permittivity=60.0, interior_conductivity=0.5))
     return dict(name="electrode array (3x3 pads, bead/cell alternating)", actuator=arr, workspace=ws,
-                bodies=lambda n: [(bead, cell)[i % 2] for i in range(n)],
-                limits=HardwareLimits(time_step=10e-3), settings=PlanSettings(tolerance=8e-6, clearance=3e-6),
-                tracking=0.5e-6, region=None)
+                bodies=lambda n: [(bead, cell)[i % 2] for i in range(n)], limits=HardwareLimits(time_step=10e-3),
+                settings=PlanSettings(tolerance=8e-6, clearance=3e-6), tracking=0.5e-6, region=None,
+                Ns=(2, 4) if FULL else (2,), holdable_goals=True)
 
 
 def counting_bound(case):
@@ -98,85 +133,111 @@ def counting_bound(case):
     return b.mode, b.size, (b.size - 1) / 2.0
 
 
+def draw_task(case, N, seed):
+    """Seeded starts and goals (goals where each body alone is steerable, if the case asks)."""
+    ws, act = case["workspace"], case["actuator"]
+    bodies = case["bodies"](N)
+    rmax = max(b.radius for b in bodies)
+    starts = ws.sample(N, 1.5 * rmax, seed, region=case["region"], separation=4 * rmax)
+    for k in range(200):
+        goals = ws.sample(N, 1.5 * rmax, seed + 1 + 7919 * k, region=case["region"], separation=4 * rmax)
+        if not case.get("holdable_goals"):
+            break
+        if all(steerable(act.basis([b], ws.medium, goals[i:i + 1])) for i, b in enumerate(bodies)):
+            break
+    return bodies, starts, goals
+
+
 def _reason(message):
-    """The head of a failure message, without numbers (for counting failures by kind)."""
     head = message.split(";")[0]
-    for key in ("duration", "gave up", "no route", "cannot plan", "step limit", "the estimates arrived"):
-        if head.startswith(key):
+    for key in ("duration", "no route", "cannot plan", "step limit", "the estimates arrived", "touched"):
+        if key in head:
             return key
     return head[:30]
 
 
 def run_case(case, seed=0):
-    """Closed-loop trials per N; returns rows (N, success rate, median time to goal, median wall time,
-    steerable fraction)."""
+    """Rows per N: {N, frac, runs: {controller: [(success, time_to_goal, wall, why, broke_limits)]}}."""
     ws, act = case["workspace"], case["actuator"]
-    fracs = count_curve(basis_function(act, case["bodies"], ws.medium), ws, NS, trials=COUNT_TRIALS, rng=seed,
+    fracs = count_curve(basis_function(act, case["bodies"], ws.medium), ws, case["Ns"], trials=COUNT_TRIALS, rng=seed,
                         progress=False).fraction
     rng = np.random.default_rng(seed)
     rows = []
-    for N, frac in zip(NS, fracs):
-        bodies = case["bodies"](N)
-        rmax = max(b.radius for b in bodies)
-        ok, ttg, wall, why = 0, [], [], collections.Counter()
+    for N, frac in zip(case["Ns"], fracs):
+        runs = collections.defaultdict(list)
         for _ in range(TRIALS):
             s = int(rng.integers(2**31))
-            starts = ws.sample(N, 1.5 * rmax, s, region=case["region"], separation=4 * rmax)
-            goals = ws.sample(N, 1.5 * rmax, s + 1, region=case["region"], separation=4 * rmax)
-            tic = time.perf_counter()
-            res = closed_loop(act, act, bodies, ws, starts, goals, limits=case["limits"], settings=case["settings"],
-                              rng=s, brownian=True, tracking_noise=case["tracking"])
-            wall.append(time.perf_counter() - tic)
-            if res.success:
-                # Correctness of what is counted as a success (times are never asserted).
-                assert res.metrics["all_reached"] and np.isfinite(res.time_to_goal), res.message
-            if res.success and res.metrics["contacts"] == 0:
-                ok += 1
-                ttg.append(res.time_to_goal)
-            elif res.success:
-                # Arrived, but two bodies touched on the way: not a success by this benchmark's rule.
-                why["arrived with contact"] += 1
-            else:
-                why[_reason(res.message)] += 1
-        top = ", ".join(f"{k} x{v}" for k, v in why.most_common(2))
-        rows.append((N, ok / TRIALS, float(np.median(ttg)) if ttg else float("nan"), float(np.median(wall)),
-                     float(frac), top))
+            bodies, starts, goals = draw_task(case, N, s)
+            # Period and time limit as fieldplan's controller picks them; the peers get the same.
+            ctrl = Controller(act, bodies, ws, goals, limits=case["limits"], settings=case["settings"])
+            ctrl.prepare(starts)
+            period, duration = ctrl.period, ctrl.time_limit
+            for label, limits in (("fieldplan", case["limits"]), ("fieldplan, no limits", None)):
+                tic = time.perf_counter()
+                res = closed_loop(act, act, bodies, ws, starts, goals, limits=limits, settings=case["settings"],
+                                  rng=s, brownian=True, tracking_noise=case["tracking"], duration=duration)
+                wall = time.perf_counter() - tic
+                ok = res.success and res.metrics["contacts"] == 0
+                if res.success:
+                    # What is counted as a success must be one (times are never asserted).
+                    assert res.metrics["all_reached"] and np.isfinite(res.time_to_goal), res.message
+                runs[label].append((ok, res.time_to_goal if ok else np.nan, wall, None if ok else _reason(res.message),
+                                    False))
+            for label, fn in PEERS.items():
+                tic = time.perf_counter()
+                out = run_peer(fn, act, bodies, ws, starts, goals, period=period, duration=duration,
+                               tolerance=case["settings"].tolerance, rng=s, tracking_noise=case["tracking"],
+                               limits=case["limits"])
+                runs[label].append((out["success"], out["time_to_goal"], time.perf_counter() - tic,
+                                    None if out["success"] else out["message"], bool(out["violations"])))
+        rows.append({"N": N, "frac": float(frac), "runs": runs})
     return rows
 
 
-def print_table(name, mode, size, bound, rows):
+def print_table(case, mode, size, bound, rows):
     what = "K" if mode == "linear" else "M"
     rule = "K/2" if mode == "linear" else "(M-1)/2"
-    print(f"\n{name}: {mode} mode, {what} = {size}, counting-rule bound {rule} = {bound:g} bodies; "
-          f"{TRIALS} closed-loop trials per N, steerable fraction over {COUNT_TRIALS} configurations; "
-          "success = all truly within tolerance and no contact")
-    print(f"{'N':>3} {'success':>8} {'t_goal med [s]':>15} {'wall/trial [s]':>15} {'N<=bound':>9} {'steerable':>10}"
-          "  failures")
-    for N, rate, ttg, wall, frac, why in rows:
-        print(f"{N:>3} {rate:>8.2f} {ttg:>15.4g} {wall:>15.3g} {('yes' if N <= bound else 'no'):>9} {frac:>10.2f}"
-              f"  {why or '-'}")
+    print(f"\n{case['name']}: {mode} mode, {what} = {size}, one-step counting bound {rule} = {bound:g} bodies; "
+          f"{TRIALS} closed-loop trials per N and controller on the same tasks, seeds and simulator; steerable "
+          f"fraction over {COUNT_TRIALS} random configurations; success = all truly within tolerance, no contact")
+    print(f"{'N':>3} {'steerable':>9}  {'controller':<21} {'success':>8} {'95% interval':>13} {'t_goal med [s]':>15} "
+          f"{'wall/trial [s]':>15}  failures / notes")
+    for row in rows:
+        for label, runs in row["runs"].items():
+            k = sum(r[0] for r in runs)
+            n = len(runs)
+            lo, hi = _wilson(k, n)
+            ttg = [r[1] for r in runs if r[0]]
+            why = collections.Counter(r[3] for r in runs if r[3])
+            broke = sum(r[4] for r in runs)
+            notes = ", ".join(f"{w} x{c}" for w, c in why.most_common(2))
+            if broke:
+                notes += (", " if notes else "") + f"broke declared limits x{broke}"
+            print(f"{row['N']:>3} {row['frac']:>9.2f}  {label:<21} {f'{k}/{n}':>8} {f'[{lo:.2f}, {hi:.2f}]':>13} "
+                  f"{(np.median(ttg) if ttg else float('nan')):>15.4g} {np.median([r[2] for r in runs]):>15.3g}  "
+                  f"{notes or '-'}")
 
 
 def _bench(case_fn):
     case = case_fn()
     mode, size, bound = counting_bound(case)
     rows = run_case(case)
-    print_table(case["name"], mode, size, bound, rows)
-    for _, rate, _, _, frac, _ in rows:
-        assert 0.0 <= rate <= 1.0 and 0.0 <= frac <= 1.0
+    print_table(case, mode, size, bound, rows)
+    for row in rows:
+        assert 0.0 <= row["frac"] <= 1.0
+        for runs in row["runs"].values():
+            assert len(runs) == TRIALS
     return rows
 
 
-def test_bench_capability_coil_array():
-    rows = _bench(coil_case)
-    assert rows, 'no rows measured'
+@pytest.mark.parametrize("case_fn", [coil_case, soft_case, plate_case, plate64_case, electrode_case],
+                         ids=["coils", "soft-beads", "plate24", "plate64", "electrodes"])
+def test_bench_capability(case_fn):
+    rows = _bench(case_fn)
+    assert rows, "no rows measured"
 
 
-def test_bench_capability_plate():
-    rows = _bench(plate_case)
-    assert rows, 'no rows measured'
-
-
-def test_bench_capability_electrode_array():
-    rows = _bench(electrode_case)
-    assert rows, 'no rows measured'
+def test_wilson_interval_is_the_textbook_one():
+    # Wilson (1927) score interval; 3 of 4 at 95 %: [0.301, 0.954] (recomputed from the closed form).
+    lo, hi = _wilson(3, 4)
+    assert abs(lo - 0.3006) < 1e-3 and abs(hi - 0.9544) < 1e-3

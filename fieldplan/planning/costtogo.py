@@ -1,0 +1,312 @@
+"""Cost-to-go maps: each body's time to its goal, by graph search over the free space.
+
+For one body and one goal, :func:`cost_to_go` builds the free-space grid graph of that body
+(:func:`fieldplan.routes.occupancy_graph`: 8-neighbour cells whose connecting segment stays clear of
+walls and obstacles), weighs each *directed* edge by its length over the speed the actuator can give
+that body along it (:func:`fieldplan.routes.available_speed`, the body alone, every input at its
+best), and runs Dijkstra's algorithm (``scipy.sparse.csgraph.dijkstra``) from the goal over the
+reversed edges. The result is the time the fields need to bring the body home from every cell,
+shortest over all paths around obstacles and through slow regions: the horizon planner's objective.
+
+:class:`CostToGo` interpolates the map bilinearly (with its gradient) and turns it into the local
+quadratic the horizon program minimises: near a point ``x0`` the squared time-to-go
+``J(x)^2 / 2`` is approximated by ``|grad J|^2 |x - c|^2 / 2`` with the *virtual goal*
+``c = x0 - J grad J / |grad J|^2``. The value and gradient at ``x0`` are exact (of the map), and in
+open space with uniform speed ``v`` the approximation is exact: ``c`` is the goal and the weight
+``1 / v^2``. Around an obstacle the virtual goal lies along the way round, so minimising it never
+asks a body to go through a wall.
+
+Examples
+--------
+>>> import numpy as np, fieldplan
+>>> from fieldplan.testing import SourceArray
+>>> act = SourceArray([[0, 0], [1e-3, 0], [1e-3, 1e-3], [0, 1e-3]], force=2e-12)
+>>> ws = fieldplan.Workspace((0, 0, 1e-3, 1e-3))
+>>> bead = fieldplan.Body("bead", radius=5e-6, density=1050.0)
+>>> ctg = cost_to_go(ws, act, bead, [7e-4, 6e-4])
+>>> bool(ctg.value([[3e-4, 3e-4]])[0] > ctg.value([[6e-4, 5e-4]])[0] > 0)
+True
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.sparse as sp
+import shapely
+from scipy.ndimage import distance_transform_edt
+from scipy.sparse.csgraph import dijkstra
+
+from ..errors import WorkspaceError
+from ..routes import _DIRECTIONS, available_speed, default_resolution, occupancy_graph, smooth_route
+
+__all__ = ["CostToGo", "cost_to_go", "speed_table"]
+
+
+def speed_table(graph, actuator, body, medium, floor=1e-3):
+    """Available speed of ``body`` at every node of ``graph`` along the 8 grid directions, m/s.
+
+    Parameters
+    ----------
+    graph : networkx.Graph
+        From :func:`fieldplan.routes.occupancy_graph`.
+    actuator : Actuator
+    body : Body
+    medium : Medium
+    floor : float
+        Speeds below ``floor`` times the fastest on the graph are raised to it, so a region the fields
+        barely reach is expensive but not cut off (a dead zone is a long way, not a wall).
+
+    Returns
+    -------
+    nodes : list
+        Node keys, in the order of the rows below.
+    xy : ndarray, shape (V, 2)
+        Node positions, m.
+    speed : ndarray, shape (V, 8)
+        m/s, directions as ``fieldplan.routes._DIRECTIONS`` (east, then counter-clockwise).
+    """
+    nodes = list(graph.nodes)
+    xy = np.array([graph.nodes[v]["xy"] for v in nodes], dtype=float).reshape(-1, 2)
+    if not nodes:
+        return nodes, xy, np.zeros((0, 8))
+    basis = actuator.basis([body] * len(nodes), medium, xy)
+    dirs = _DIRECTIONS / np.linalg.norm(_DIRECTIONS, axis=1, keepdims=True)
+    speed = available_speed(basis, dirs)
+    vmax = float(max(speed.max(), 1e-300))
+    return nodes, xy, np.maximum(speed, floor * vmax)
+
+
+class CostToGo:
+    """One body's time-to-goal map, interpolated, with the local quadratic the planner minimises.
+
+    Built by :func:`cost_to_go`; not usually made by hand.
+
+    Parameters
+    ----------
+    xs, ys : ndarray
+        Cell-centre coordinates of the grid, m.
+    values : ndarray, shape (len(ys), len(xs))
+        Time to goal at each cell centre, s; cells outside the free space hold an extrapolation that
+        grows away from it (so the gradient points back in).
+    reachable : ndarray of bool, same shape
+        Cells of the free space from which the goal can be reached.
+    goal : array_like, shape (2,)
+        m.
+    goal_speed : float
+        Typical speed near the goal, m/s (weights the final approach).
+    near : float
+        Within this distance of the goal the map is replaced by the straight-line quadratic
+        ``|x - goal|^2 / (2 goal_speed^2)``, m (the grid is too coarse to resolve the goal).
+    route : ndarray, shape (P, 2), optional
+        The fastest path from the start the map was asked about, m (for plots and reports).
+    """
+
+    def __init__(self, xs, ys, values, reachable, goal, goal_speed, near, route=None):
+        self.xs = np.asarray(xs, dtype=float)
+        self.ys = np.asarray(ys, dtype=float)
+        self.values = np.asarray(values, dtype=float)
+        self.reachable = np.asarray(reachable, dtype=bool)
+        self.goal = np.asarray(goal, dtype=float).reshape(2)
+        self.goal_speed = float(goal_speed)
+        self.near = float(near)
+        self.route = route
+        self.res = float(self.xs[1] - self.xs[0]) if len(self.xs) > 1 else 1.0
+
+    def _cells(self, xy):
+        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        fx = (xy[:, 0] - self.xs[0]) / self.res
+        fy = (xy[:, 1] - self.ys[0]) / self.res
+        nx_, ny = len(self.xs), len(self.ys)
+        ix = np.clip(np.floor(fx).astype(int), 0, max(nx_ - 2, 0))
+        iy = np.clip(np.floor(fy).astype(int), 0, max(ny - 2, 0))
+        # Beyond the grid the map is extended linearly (fractions outside [0, 1]).
+        return xy, ix, iy, fx - ix, fy - iy
+
+    def value_and_gradient(self, xy):
+        """Time to goal (s) and its gradient (s/m) at points ``xy`` (n, 2) m.
+
+        Bilinear in each grid cell; within ``near`` of the goal the straight-line form.
+
+        Returns
+        -------
+        value : ndarray, shape (n,)
+        gradient : ndarray, shape (n, 2)
+        """
+        xy, ix, iy, a, b = self._cells(xy)
+        V = self.values
+        if V.shape[0] < 2 or V.shape[1] < 2:
+            d = xy - self.goal
+            return np.linalg.norm(d, axis=1) / self.goal_speed, d / self.goal_speed
+        v00, v10 = V[iy, ix], V[iy, ix + 1]
+        v01, v11 = V[iy + 1, ix], V[iy + 1, ix + 1]
+        val = (1 - a) * (1 - b) * v00 + a * (1 - b) * v10 + (1 - a) * b * v01 + a * b * v11
+        gx = ((1 - b) * (v10 - v00) + b * (v11 - v01)) / self.res
+        gy = ((1 - a) * (v01 - v00) + a * (v11 - v10)) / self.res
+        grad = np.stack([gx, gy], axis=1)
+        d = xy - self.goal
+        dist = np.linalg.norm(d, axis=1)
+        close = dist <= self.near
+        if close.any():
+            val[close] = dist[close] / self.goal_speed
+            with np.errstate(invalid="ignore", divide="ignore"):
+                grad[close] = np.where(dist[close, None] > 0, d[close] / np.maximum(dist[close, None], 1e-300), 0.0) \
+                    / self.goal_speed
+        return val, grad
+
+    def value(self, xy):
+        """Time to goal at points ``xy`` (n, 2) m, s, shape (n,)."""
+        return self.value_and_gradient(xy)[0]
+
+    def quadratic(self, xy):
+        """Local model of ``J^2 / 2`` at ``xy``: weights (s/m)^2 and virtual goals (m).
+
+        ``J(x)^2 / 2 ~ weight * |x - centre|^2 / 2`` near each point, with the value and gradient
+        of ``J^2 / 2`` matched exactly; within ``near`` of the goal the centre is the goal itself.
+
+        Returns
+        -------
+        weight : ndarray, shape (n,)
+        centre : ndarray, shape (n, 2)
+        """
+        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        val, grad = self.value_and_gradient(xy)
+        g2 = np.sum(grad**2, axis=1)
+        floor = 1e-6 / self.goal_speed**2
+        weight = np.maximum(g2, floor)
+        # c = x - J grad / |grad|^2: on a plateau of the map (|grad| ~ 0, e.g. a ridge between two
+        # ways round an obstacle) the weight is tiny and the centre far; cap the distance so the
+        # numbers stay finite - the product weight * (x - c), the gradient, is what matters.
+        step = (val / weight)[:, None] * grad
+        span = 10.0 * max(self.res * max(len(self.xs), len(self.ys)), 1e-12)
+        ln = np.linalg.norm(step, axis=1, keepdims=True)
+        step = np.where(ln > span, step * (span / np.maximum(ln, 1e-300)), step)
+        centre = xy - step
+        close = np.linalg.norm(xy - self.goal, axis=1) <= self.near
+        centre[close] = self.goal
+        weight[close] = 1.0 / self.goal_speed**2
+        return weight, centre
+
+
+def cost_to_go(workspace, actuator, body, goal, *, start=None, resolution=None, clearance=0.0, floor=1e-3,
+               graph=None, speeds=None):
+    """Time-to-goal map of ``body`` for ``goal``, by Dijkstra over field-weighted directed edges.
+
+    Parameters
+    ----------
+    workspace : Workspace
+    actuator : Actuator
+        The planning model (its field basis gives the speeds).
+    body : Body
+    goal : array_like, shape (2,)
+        m.
+    start : array_like, shape (2,), optional
+        If given, the fastest path from here is stored as ``route`` (m).
+    resolution : float, optional
+        Grid cell, m (default :func:`fieldplan.routes.default_resolution`).
+    clearance : float
+        Extra distance kept from walls, m.
+    floor : float
+        Relative speed floor (see :func:`speed_table`).
+    graph : networkx.Graph, optional
+        A graph from :func:`fieldplan.routes.occupancy_graph` to reuse (same body radius).
+    speeds : tuple, optional
+        ``(nodes, xy, speed)`` from :func:`speed_table` to reuse (same graph and body).
+
+    Returns
+    -------
+    CostToGo
+
+    Raises
+    ------
+    WorkspaceError
+        The body has no free space at this resolution.
+    """
+    res = float(resolution) if resolution else default_resolution(workspace)
+    g = graph if graph is not None else occupancy_graph(workspace, body.radius, res, clearance=clearance)
+    nodes, xy, speed = speeds if speeds is not None else speed_table(g, actuator, body, workspace.medium, floor)
+    if not nodes:
+        raise WorkspaceError(f"body {body.name!r} (radius {body.radius:g} m) has no free space on a "
+                             f"{res:g} m grid: the workspace is too narrow for it.")
+    goal = np.asarray(goal, dtype=float).reshape(2)
+    xs, ys = g.graph["xs"], g.graph["ys"]
+    V = len(nodes)
+    index = {v: i for i, v in enumerate(nodes)}
+    # Directed edge costs: a -> b takes length / (mean speed along a -> b at its two ends).
+    edges = np.array([(index[a], index[b]) for a, b in g.edges], dtype=np.int64).reshape(-1, 2)
+    rows, cols, cost = [], [], []
+    if len(edges):
+        for a, b in ((edges[:, 0], edges[:, 1]), (edges[:, 1], edges[:, 0])):
+            d = xy[b] - xy[a]
+            k = np.round(np.arctan2(d[:, 1], d[:, 0]) / (np.pi / 4)).astype(np.int64) % 8
+            v = 0.5 * (speed[a, k] + speed[b, k])
+            rows.append(a)
+            cols.append(b)
+            cost.append(np.linalg.norm(d, axis=1) / v)
+    # The goal is an extra node; the cells around it (its 8 neighbours when it sits on a cell
+    # centre) in straight sight join it, at the available speed toward it.
+    gi = V
+    dg = np.linalg.norm(xy - goal, axis=1)
+    cand = np.flatnonzero(dg <= 1.5 * res)
+    if len(cand):
+        segs = shapely.linestrings(np.stack([np.repeat(goal[None], len(cand), 0), xy[cand]], axis=1))
+        cand = cand[shapely.covers(g.graph["body_free"], segs)]
+    if not len(cand):
+        cand = np.array([int(np.argmin(dg))])
+    dirs = goal - xy[cand]
+    nd = np.maximum(np.linalg.norm(dirs, axis=1, keepdims=True), 1e-300)
+    basis = actuator.basis([body] * len(cand), workspace.medium, xy[cand])
+    vdir = available_speed(basis, dirs / nd)
+    vmax = float(speed.max())
+    vgoal = np.maximum(np.diag(vdir), floor * vmax)    # each cell's speed along its own direction
+    rows.append(cand)
+    cols.append(np.full(len(cand), gi))
+    cost.append(dg[cand] / vgoal)
+    rows, cols, cost = np.concatenate(rows), np.concatenate(cols), np.concatenate(cost)
+    # Cost-to-go = shortest path *to* the goal: search from the goal over reversed edges.
+    M = sp.csr_matrix((cost, (cols, rows)), shape=(V + 1, V + 1))
+    dist, pred = dijkstra(M, directed=True, indices=gi, return_predecessors=True)
+    J = dist[:V]
+    # Speed for the final approach: the mean over directions at the goal's cells.
+    goal_speed = float(np.mean(speed[cand])) if len(cand) else float(np.mean(speed))
+    ny, nx_ = len(ys), len(xs)
+    grid = np.full((ny, nx_), np.nan)
+    reach = np.zeros((ny, nx_), dtype=bool)
+    keys = np.array(nodes, dtype=np.int64).reshape(-1, 2)        # (ix, iy)
+    ok = np.isfinite(J)
+    grid[keys[ok, 1], keys[ok, 0]] = J[ok]
+    reach[keys[ok, 1], keys[ok, 0]] = True
+    if not ok.any():
+        raise WorkspaceError(f"goal ({goal[0]:.6g}, {goal[1]:.6g}) m of body {body.name!r} is cut off from its "
+                             "free space on the route grid.")
+    # Outside the reachable cells: the nearest reachable value plus the distance at the median speed,
+    # so the gradient points back into the free space.
+    dist_out, (iy_n, ix_n) = distance_transform_edt(~reach, return_indices=True)
+    vmed = float(np.median(speed))
+    grid = np.where(reach, grid, grid[iy_n, ix_n] + dist_out * res / vmed)
+    route = None
+    if start is not None:
+        route = _route_from(start, goal, xy, J, pred, g, gi)
+    return CostToGo(xs, ys, grid, reach, goal, goal_speed, near=1.5 * res, route=route)
+
+
+def _route_from(start, goal, xy, J, pred, graph, gi):
+    """Fastest polyline from ``start`` to the goal along the Dijkstra tree (None if cut off)."""
+    start = np.asarray(start, dtype=float).reshape(2)
+    d = np.linalg.norm(xy - start, axis=1)
+    order = np.argsort(d)[:16]
+    order = order[np.isfinite(J[order])]
+    if not len(order):
+        return None
+    segs = shapely.linestrings(np.stack([np.repeat(start[None], len(order), 0), xy[order]], axis=1))
+    vis = shapely.covers(graph.graph["body_free"], segs)
+    first = int(order[np.flatnonzero(vis)[0]]) if vis.any() else int(order[0])
+    path = [start]
+    v = first
+    for _ in range(len(xy) + 1):
+        if v == gi or v < 0:
+            break
+        path.append(xy[v])
+        v = int(pred[v])
+    path.append(goal)
+    return smooth_route(np.asarray(path), graph.graph["free"] if graph.graph["free"].covers(
+        shapely.linestrings(np.asarray(path))) else graph.graph["body_free"])

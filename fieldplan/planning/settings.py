@@ -1,0 +1,218 @@
+"""Planner settings and the goal check shared by every controller.
+
+Examples
+--------
+>>> PlanSettings(horizon=12).method
+'horizon'
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import FieldplanError, WorkspaceError
+
+__all__ = ["PlanSettings", "check_goals"]
+
+
+@dataclass
+class PlanSettings:
+    """Settings of the controller and the planner (SI units; ``None`` picks a default).
+
+    Parameters
+    ----------
+    period : float, optional
+        Control period, s. Default: chosen from the speeds so the median body moves about one
+        trust radius per period (rounded to the hardware time step, at least the minimum dwell).
+    method : {"horizon", "step"}
+        ``"horizon"`` (default): the horizon planner of :class:`fieldplan.planning.Controller` -
+        sequential convex programming over ``horizon`` periods for all bodies at once, with each
+        body's cost-to-go map as the objective. ``"step"``: the earlier route-tracking step
+        controller (:class:`fieldplan.plan.StepController`), kept for comparison.
+    horizon : int, optional
+        Periods the program looks ahead. Default (horizon method): from the fields' variation
+        length and the bodies' speeds, so the horizon spans about three variation lengths of
+        travel, between 8 and 30 periods; the step method defaults to 1.
+    iterations : int
+        Sequential convex programming iterations per period (horizon method): each solves the QP
+        linearised along the current nominal trajectory, re-evaluates the true cost on the model,
+        and is accepted only if that cost did not increase (else the trust region shrinks).
+    replan_every : int
+        Horizon method: periods of each plan played before planning again from new measurements
+        (1: every period). More saves computing when periods are short against the time a plan
+        takes, at the cost of reacting later to noise and model error.
+    field_table : bool
+        Horizon method: roll candidate sequences out on the field basis tabulated on a grid and
+        interpolated (:class:`fieldplan.planning.fieldtable.FieldTable`), much faster than the
+        exact model for coil and electrode fields; the simulator always uses the exact model.
+    table_resolution : float, optional
+        Cell of that grid, m (default half the route grid cell).
+    tolerance : float, optional
+        Arrival radius, m (default each body's radius).
+    time_limit : float, optional
+        Longest plan, s (default: five times the sum over bodies of route length / available speed,
+        plus 50 periods: enough to move the bodies one after another).
+    clearance : float, optional
+        Extra distance kept from walls by routes and between bodies by the separation constraint, m
+        (default half the largest radius).
+    tracking_weight, effort_weight, smoothness_weight : float
+        Objective weights (positions in trust radii, inputs in fractions of their span).
+    slack_weight : float
+        Exact-penalty weight of the soft constraints.
+    progress_weight : float
+        Reward of the common progress along the routes, relative to the tracking cost of a full
+        step (small: the program takes the largest step all bodies can follow closely).
+    trust_fraction : float
+        Trust radius per period as a fraction of the fields' variation length ``|f| / |grad f|``.
+    max_trust : float, optional
+        Largest trust radius, m (default 1/20 of the workspace's larger side).
+    route_resolution : float, optional
+        Route grid cell, m (default :func:`fieldplan.routes.default_resolution`).
+    field_aware_routes : bool
+        Route edge cost = time at the actuator's available speed instead of length.
+    assign_goals : bool
+        Bodies of the same kind may swap goals (minimum total route cost).
+    max_steps : int
+        Most control periods of a plan.
+    stall_window : int
+        Periods over which progress is measured to detect a stall.
+    stall_progress : float
+        A body stalls when over the window it progresses less than this fraction of what the fields
+        could do for it alone, or less than a third of what the step program planned for it.
+    relinearise : bool
+        With ``horizon > 1``, evaluate the fields at the predicted positions of later periods.
+    backend : {"osqp", "cvxpy"}
+        Step program back end (see :mod:`fieldplan.control`).
+    solver : str, optional
+        cvxpy solver name for the ``"cvxpy"`` back end.
+    separation_slots : int, optional
+        Room for pair constraints per period (default all pairs up to 4 n).
+    timeshare_rounds : int
+        In timeshare mode, play each period's primitive mix in this many shorter rounds (fewer when
+        the hardware time step does not divide the period, one with a minimum dwell), so that a body
+        strays less from the straight path between period ends.
+    arrival_margin : float
+        Once every body is within tolerance, the open-loop plan keeps steering (for at most
+        ``settle_steps`` periods) until every body is within ``arrival_margin * tolerance``: a plan
+        that stops exactly on the arrival radius would pass or fail its noisy trials by chance.
+    settle_steps : int
+        Most extra periods spent on that settling.
+    """
+
+    period: float | None = None
+    method: str = "horizon"
+    horizon: int | None = None
+    iterations: int = 3
+    replan_every: int = 1
+    field_table: bool = True
+    table_resolution: float | None = None
+    tolerance: float | None = None
+    time_limit: float | None = None
+    clearance: float | None = None
+    tracking_weight: float = 1.0
+    effort_weight: float = 1e-3
+    smoothness_weight: float = 1e-2
+    slack_weight: float = 1e3
+    progress_weight: float = 1.0
+    trust_fraction: float = 0.2
+    max_trust: float | None = None
+    route_resolution: float | None = None
+    field_aware_routes: bool = False
+    assign_goals: bool = False
+    max_steps: int = 3000
+    stall_window: int = 8
+    stall_progress: float = 0.05
+    relinearise: bool = True
+    backend: str = "osqp"
+    solver: str | None = None
+    separation_slots: int | None = None
+    timeshare_rounds: int = 4
+    arrival_margin: float = 0.5
+    settle_steps: int = 30
+
+    def __post_init__(self):
+        def positive(key, allow_none=True):
+            v = getattr(self, key)
+            if v is None and allow_none:
+                return
+            if not (isinstance(v, (int, float, np.number)) and not isinstance(v, bool) and np.isfinite(v) and v > 0):
+                raise FieldplanError(f"PlanSettings {key} must be a finite number > 0, got {v!r}.")
+
+        for key in ("period", "tolerance", "time_limit", "max_trust", "route_resolution", "table_resolution"):
+            positive(key)
+        for key in ("tracking_weight", "slack_weight", "progress_weight", "trust_fraction", "stall_progress"):
+            positive(key, allow_none=False)
+        for key in ("effort_weight", "smoothness_weight"):
+            v = getattr(self, key)
+            if not (np.isfinite(v) and v >= 0):
+                raise FieldplanError(f"PlanSettings {key} must be a finite number >= 0, got {v!r}.")
+        if self.clearance is not None and not (np.isfinite(self.clearance) and self.clearance >= 0):
+            raise FieldplanError(f"PlanSettings clearance must be >= 0 m, got {self.clearance!r}.")
+        if self.method not in ("horizon", "step"):
+            raise FieldplanError(f"PlanSettings method must be 'horizon' or 'step', got {self.method!r}.")
+        if self.horizon is not None and not (isinstance(self.horizon, (int, np.integer))
+                                             and not isinstance(self.horizon, bool) and self.horizon >= 1):
+            raise FieldplanError(f"PlanSettings horizon must be an integer >= 1 (or None for automatic), "
+                                 f"got {self.horizon!r}.")
+        for key in ("iterations", "replan_every", "max_steps", "stall_window", "timeshare_rounds"):
+            v = getattr(self, key)
+            if not (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= 1):
+                raise FieldplanError(f"PlanSettings {key} must be an integer >= 1, got {v!r}.")
+        if not (0 < self.arrival_margin <= 1):
+            raise FieldplanError(f"PlanSettings arrival_margin must be in (0, 1], got {self.arrival_margin!r}.")
+        if not (isinstance(self.settle_steps, (int, np.integer)) and self.settle_steps >= 0):
+            raise FieldplanError(f"PlanSettings settle_steps must be an integer >= 0, got {self.settle_steps!r}.")
+        if self.backend not in ("osqp", "cvxpy"):
+            raise FieldplanError(f"PlanSettings backend must be 'osqp' or 'cvxpy', got {self.backend!r}.")
+
+    @classmethod
+    def from_dict(cls, d):
+        """Settings from a mapping; unknown keys are errors (naming the key and the known ones)."""
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(d) - known)
+        if unknown:
+            raise FieldplanError(f"PlanSettings: unknown key(s) {unknown}; known keys are {sorted(known)}.")
+        return cls(**dict(d))
+
+    def to_dict(self):
+        return dataclasses.asdict(self)
+
+
+def check_goals(bodies, workspace, goals):
+    """Raise :class:`WorkspaceError` naming the body if a goal is outside its free space or two goals
+    are closer than the sum of the two radii.
+
+    Returns
+    -------
+    ndarray, shape (n, 2)
+        The goals as floats, m.
+    """
+    g = np.asarray(goals, dtype=float)
+    n = len(bodies)
+    if g.shape != (n, 2):
+        raise WorkspaceError(f"goals must have shape ({n}, 2) - one (x, y) in m per body - got {g.shape}.")
+    if not np.all(np.isfinite(g)):
+        bad = np.flatnonzero(~np.all(np.isfinite(g), axis=1)).tolist()
+        raise WorkspaceError(f"goal of body {bad[0]} ({bodies[bad[0]].name}) is not finite: {g[bad[0]].tolist()}.")
+    for i, b in enumerate(bodies):
+        if not workspace.contains(g[i:i + 1], b.radius)[0]:
+            where = "inside an obstacle or a wall" if not workspace.contains(g[i:i + 1], 0.0)[0] else \
+                "closer to a wall than its radius"
+            raise WorkspaceError(
+                f"goal of body {i} ({b.name}) at ({g[i, 0]:.6g}, {g[i, 1]:.6g}) m is {where}: its centre must be at "
+                f"least its radius {b.radius:g} m from every wall and obstacle.")
+    r = np.array([b.radius for b in bodies])
+    if n > 1:
+        d = np.linalg.norm(g[:, None] - g[None], axis=2)
+        gap = d - (r[:, None] + r[None])
+        np.fill_diagonal(gap, np.inf)
+        i, j = np.unravel_index(np.argmin(gap), gap.shape)
+        if gap[i, j] < 0:
+            i, j = min(i, j), max(i, j)
+            raise WorkspaceError(
+                f"goals of body {i} ({bodies[i].name}) and body {j} ({bodies[j].name}) are {d[i, j]:.3g} m apart, "
+                f"closer than their radii sum {r[i] + r[j]:.3g} m: both cannot be there at once.")
+    return g
