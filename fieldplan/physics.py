@@ -164,9 +164,11 @@ def wall_resistance_parallel(radius, height):
     (O'Neill, Mathematika 11, 67, 1964) and rotation without translation (Dean & O'Neill,
     Mathematika 10, 13, 1963), in the normalisation of Goldman, Cox & Brenner (Chem. Eng. Sci. 22,
     637, 1967). With ``U`` the speed parallel to the wall and ``Omega`` the rotation rate about the
-    horizontal axis normal to ``U``, the hydrodynamic force and torque magnitudes are
-    ``F = 6 pi eta r (f_tt U + f_tr r Omega)`` and ``T = 8 pi eta r^2 (t_tt U + t_rr r Omega)``,
-    signed so that a sphere rolling in the sense of its translation is resisted less.
+    horizontal axis normal to ``U``, counted positive in the rolling sense (the sense of a wheel
+    rolling along the wall in the direction of ``U``), the drag and the retarding torque are
+    ``F = 6 pi eta r (f_tt U - f_tr r Omega)`` and ``T = 8 pi eta r^2 (t_rr r Omega - t_tt U)``,
+    all four coefficients positive: a translating sphere is turned in the rolling sense, and
+    a free one spins at ``r Omega = (t_tt / t_rr) U``.
     Each recurrence is solved as a tridiagonal system truncated after about ``40/alpha`` terms
     (``alpha = arccosh(h/r)``), where the coefficients have fallen by ``exp(-80)``; results are
     converged to round-off (the tests check doubling the number of terms and Lorentz reciprocity,
@@ -214,9 +216,10 @@ def wall_drag_parallel(radius, height, rotation="free"):
     (``f_tt - f_tr t_tt / t_rr``, Goldman, Cox & Brenner 1967); ``"fixed"``: the sphere held
     against rotation (``f_tt``, O'Neill 1964). The free sphere has the smaller drag; the two differ
     by under 0.1 % above ``h/r = 1.5``, 1.7 % at a gap of 0.5 % of the radius and 3 % at 0.02 %. Its inverse is
-    the translational mobility, ``D_par / D0``. Near contact both grow as ``(8/15) ln(r/delta)``
-    (``delta = h - r``) and the "free" one as ``(1/2) ln(r/delta)`` to leading order: the drag stays
-    finite at any gap and the Faxen series (which saturates near 3.1) no longer applies.
+    the translational mobility, ``D_par / D0``. Near contact the "fixed" factor grows as
+    ``(8/15) ln(r/delta)`` (``delta = h - r``) and the "free" one as ``(1/2) ln(r/delta)`` to
+    leading order: the drag is finite at any gap, and the Faxen series (which saturates near 3.1)
+    no longer applies.
     See :func:`wall_resistance_parallel` for the method.
 
     Parameters
