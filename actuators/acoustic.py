@@ -25,8 +25,34 @@ Plate response
 
     ``w`` is a complex amplitude: the plate moves as ``Re(w e^{i omega t})``. Velocity and
     acceleration fields are ``i omega w`` and ``-omega^2 w``. Modes are kept up to
-    ``mode_margin`` times the highest tone (default 2), which bounds the modal truncation error
-    of off-resonance responses.
+    ``mode_margin`` times the highest tone (default 2).
+
+Residual flexibility of the truncated modes
+    The margin alone does not bound the truncation error. Near a point force the modal sum
+    converges slowly (the terms of the drive-point receptance fall only as ``1/omega_m``, with a
+    constant modal density), so modes to twice the top tone leave the driving-point receptance
+    14-23 % off between resonances (median, on the plates measured below). For ``excitation="force"`` the modes above the cut-off
+    ``omega_c = 2 pi mode_margin f_top`` are therefore added as a residual term, the
+    short-wavelength part of the infinite plate's point-force response (the plate equation
+    ``D lap^2 w - rho h omega^2 w = F delta`` in wavenumber space, kept for ``k > k_c``,
+    ``k_c^4 = rho h omega_c^2 / D``)::
+
+        w_res(r) = F / (2 pi D k_c^2) * tau(k_c r) * atanh(x) / x,     x = (omega / omega_c)^2
+        tau(s)   = integral_1^inf J0(s q) q^-3 dq
+                 = J0(s)/2 - s J1(s)/4 - (s^2/4) [-gamma - ln(s/2) + integral_0^s (1 - J0(t))/t dt]
+
+    (r the distance from the drive point; the last factor is the exact frequency dependence at the
+    drive point, where ``w_res = F atanh(x) / (4 pi sqrt(D rho h) omega_c x)``; elsewhere the
+    static profile ``tau`` is used). It is the modal density of the plate interior (Weyl's law,
+    ``A k^2 / 4 pi`` modes below ``k``) times the mean ``phi_m^2 = 1/(rho h A)`` of mass-normalised
+    modes: exact for a drive point more than a few ``1/k_c`` from edges and supports, and an
+    approximation closer to them. Against modes to four times the cut-off (plus this tail), it
+    brings the median error of the drive-point receptance between the resonances from 14 % to
+    0.3 % (200 x 200 mm plate, drive 36 mm off centre) and from 23 % to 2 % (120 x 100 mm, drive
+    24 mm off centre, nearer the edges), and that of grad |w|^2 within 10 mm of the drive from 30 %
+    to 2.5 % (tests/test_acoustic.py). A base drive loads the plate uniformly, whose
+    high modes take part only weakly (their participation ``Gamma_m`` falls with order), so no
+    residual is added there; the tests check that its response has converged at the default margin.
 
 Particle drift (phenomenological)
     A grain's drift velocity, averaged over many cycles, is modelled as ::
@@ -87,6 +113,7 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+from scipy import special
 from scipy.constants import g as STANDARD_GRAVITY
 
 from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
@@ -94,7 +121,7 @@ from fieldplan.errors import ActuatorError
 from fieldplan.units import to_si
 
 from .plate_modes import (ALGORITHM_VERSION, PlateModes, _check_material, bending_wavenumber,
-                          parse_edges, parse_supports, plate_modes)
+                          flexural_rigidity, parse_edges, parse_supports, plate_modes)
 
 __all__ = [
     "Plate",
@@ -126,7 +153,26 @@ MATERIALS = {
     "glass": (70e9, 0.22, 2500.0),
 }
 
-_GRID_VERSION = 1
+_GRID_VERSION = 2          # 2: residual flexibility of the truncated modes (force drive)
+
+
+def _tail_profile(s):
+    """``tau(s) = integral_1^inf J0(s q) q^-3 dq`` and ``d tau / ds`` (module docstring), s >= 0."""
+    s = np.asarray(s, dtype=float)
+    tau = np.empty_like(s)
+    dtau = np.empty_like(s)
+    small = s < 1e-3
+    # Series at the drive point: tau = 1/2 - s^2/4 + (s^2/4)(gamma + ln(s/2)) + O(s^4 ln s).
+    q = s[small]
+    lg = np.euler_gamma + np.log(np.maximum(q, 1e-300) / 2.0)
+    tau[small] = 0.5 - q * q / 4.0 + q * q / 4.0 * lg
+    dtau[small] = q * (lg / 2.0 - 0.25)
+    q = s[~small]
+    j0, j1 = special.j0(q), special.j1(q)
+    inner = special.it2j0y0(q)[0]                    # integral_0^s (1 - J0(t))/t dt
+    tau[~small] = j0 / 2.0 - q * j1 / 4.0 - q * q / 4.0 * (-np.euler_gamma - np.log(q / 2.0) + inner)
+    dtau[~small] = (2.0 * tau[~small] - j0) / q      # from d/ds [s^2 integral_s^inf J0(u) u^-3 du]
+    return tau, dtau
 
 
 # ---------------------------------------------------------------------------------------------
@@ -440,7 +486,8 @@ class Plate(Actuator):
     gate_width : float
         Width of the hop-gate ramp in Gamma (air only).
     mode_margin : float
-        Modes are kept up to ``mode_margin`` times the highest tone frequency (>= 1.2).
+        Modes are kept up to ``mode_margin`` times the highest tone frequency (>= 1.2); for a
+        point force the modes above are added as a residual flexibility (module docstring).
     points_per_wavelength : float
         Grid nodes per bending wavelength at the highest tone (>= 6; default 20, which keeps the
         interpolation error of the drift velocity near 1e-3 of its peak).
@@ -692,6 +739,33 @@ class Plate(Actuator):
             raise ActuatorError(f"Plate: frequency {bad[0]:g} Hz is outside the declared band [{lo:g}, {hi:g}] Hz.")
         return f
 
+    def _residual(self, frequencies, xy, gradient=False):
+        """Residual flexibility of the modes above the cut-off, per unit drive (module docstring).
+
+        Returns ``w_res`` of shape (F, n), and with ``gradient`` also ``(d/dx, d/dy)`` of shape
+        (F, n) each; all zero for a base drive. Real: the truncated modes respond in phase.
+        """
+        f = np.atleast_1d(np.asarray(frequencies, dtype=float))
+        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        zero = np.zeros((len(f), len(xy)))
+        if self.excitation != "force":
+            return (zero, zero, zero) if gradient else zero
+        d = flexural_rigidity(self.thickness, self.youngs_modulus, self.poisson_ratio)
+        rho_h = self.density * self.thickness
+        omega_c = 2.0 * np.pi * self._mode_frequency_limit()
+        kc = (rho_h * omega_c**2 / d) ** 0.25
+        x = (f / self._mode_frequency_limit()) ** 2             # < 1 / mode_margin^2 <= 0.7
+        dyn = np.where(x > 1e-12, np.arctanh(np.maximum(x, 1e-12)) / np.maximum(x, 1e-12), 1.0)
+        rel = xy - np.asarray(self.drive_point, dtype=float)
+        r = np.hypot(rel[:, 0], rel[:, 1])
+        tau, dtau = _tail_profile(kc * r)
+        scale = self.gain / (2.0 * np.pi * d * kc**2)
+        w = dyn[:, None] * (scale * tau)[None, :]
+        if not gradient:
+            return w
+        radial = scale * kc * dtau / np.maximum(r, 1e-300)    # d tau/dr / r; dtau ~ s ln s -> 0
+        return w, dyn[:, None] * (radial * rel[:, 0])[None, :], dyn[:, None] * (radial * rel[:, 1])[None, :]
+
     def frequency_response(self, frequencies, xy):
         """Complex deflection per unit drive at points, shape (F, n).
 
@@ -711,7 +785,7 @@ class Plate(Actuator):
         xy = self.check_points(xy)
         coef, sing, off = self._combined(f)
         w = self.modes.evaluate(coef, xy, sing=sing)   # (n, F)
-        return (w + off[None, :]).T * self.gain
+        return (w + off[None, :]).T * self.gain + self._residual(f, xy)
 
     def deflection(self, frequency, amplitude, xy):
         """Complex deflection amplitude ``w`` at points, m, shape (n,) (the plate moves as Re(w e^{i omega t}))."""
@@ -724,7 +798,8 @@ class Plate(Actuator):
         coef, sing, _ = self._combined(f)
         m = self.modes
         g = np.stack([m.evaluate(coef, xy, 1, 0, sing)[:, 0], m.evaluate(coef, xy, 0, 1, sing)[:, 0]], axis=-1)
-        return g * self.gain * float(amplitude)
+        _, rx, ry = self._residual(f, xy, gradient=True)
+        return (g * self.gain + np.stack([rx[0], ry[0]], axis=-1)) * float(amplitude)
 
     def surface_velocity(self, frequency, amplitude, xy):
         """Complex normal velocity of the plate surface ``i omega w``, m/s, shape (n,)."""
@@ -738,11 +813,11 @@ class Plate(Actuator):
         """Per-unit-drive (n, F, 6) samples by direct modal evaluation (no grid)."""
         coef, sing, off = self._combined(frequencies)
         m = self.modes
-        w = m.evaluate(coef, xy, sing=sing) + off[None, :]
-        wx = m.evaluate(coef, xy, 1, 0, sing)
-        wy = m.evaluate(coef, xy, 0, 1, sing)
-        out = np.stack([w.real, w.imag, wx.real, wx.imag, wy.real, wy.imag], axis=-1)
-        return out * self.gain
+        rw, rx, ry = self._residual(frequencies, xy, gradient=True)
+        w = (m.evaluate(coef, xy, sing=sing) + off[None, :]) * self.gain + rw.T
+        wx = m.evaluate(coef, xy, 1, 0, sing) * self.gain + rx.T
+        wy = m.evaluate(coef, xy, 0, 1, sing) * self.gain + ry.T
+        return np.stack([w.real, w.imag, wx.real, wx.imag, wy.real, wy.imag], axis=-1)
 
     # -- tone grid -----------------------------------------------------------------------------
     def _grid_spec(self, freqs):
@@ -768,10 +843,13 @@ class Plate(Actuator):
         ys = gy0 + dy * np.arange(ny)
         coef, sing, off = self._combined(freqs)
         m = self.modes
-        w = m.evaluate_grid(coef, xs, ys, sing=sing) + off[:, None, None]    # (F, ny, nx)
-        wx = m.evaluate_grid(coef, xs, ys, 1, 0, sing)
-        wy = m.evaluate_grid(coef, xs, ys, 0, 1, sing)
-        stack = np.stack([w.real, w.imag, wx.real, wx.imag, wy.real, wy.imag], axis=-1) * self.gain
+        X, Y = np.meshgrid(xs, ys)
+        rw, rx, ry = (c.reshape(len(freqs), ny, nx) for c in
+                      self._residual(freqs, np.column_stack([X.ravel(), Y.ravel()]), gradient=True))
+        w = (m.evaluate_grid(coef, xs, ys, sing=sing) + off[:, None, None]) * self.gain + rw    # (F, ny, nx)
+        wx = m.evaluate_grid(coef, xs, ys, 1, 0, sing) * self.gain + rx
+        wy = m.evaluate_grid(coef, xs, ys, 0, 1, sing) * self.gain + ry
+        stack = np.stack([w.real, w.imag, wx.real, wx.imag, wy.real, wy.imag], axis=-1)
         # float32 halves memory and disk; its 6e-8 relative precision is far below the
         # interpolation error.
         data = np.ascontiguousarray(stack.transpose(1, 2, 0, 3).reshape(ny * nx, len(freqs) * 6), dtype=np.float32)
@@ -826,8 +904,10 @@ class Plate(Actuator):
         n = 61
         xs, ys = np.linspace(x0, x1, n), np.linspace(y0, y1, n)
         coef, sing, off = self._combined(freqs)
-        w = self.modes.evaluate_grid(coef, xs, ys, sing=sing) + off[:, None, None]
-        return np.max(np.abs(w).reshape(len(freqs), -1), axis=1) * self.gain
+        X, Y = np.meshgrid(xs, ys)
+        res = self._residual(freqs, np.column_stack([X.ravel(), Y.ravel()])).reshape(len(freqs), n, n)
+        w = (self.modes.evaluate_grid(coef, xs, ys, sing=sing) + off[:, None, None]) * self.gain + res
+        return np.max(np.abs(w).reshape(len(freqs), -1), axis=1)
 
     def prepare(self):
         """Compute or load the modes, tones and field grids now (otherwise done on first use)."""

@@ -8,7 +8,15 @@ import numpy as np
 
 from .errors import FieldplanError
 
-__all__ = ["Body", "Shell"]
+__all__ = ["Body", "Shell", "DEFAULT_GAP"]
+
+#: Default gap between a sedimented body's surface and the floor, m. Common practice, from memory:
+#: a colloid resting on glass in water floats on its electrostatic double layer (Debye length
+#: about 10 nm at 1 mM salt), and total-internal-reflection microscopy of sedimented micrometre
+#: beads finds most-probable gaps of a few tens to a few hundred nanometres (Prieve, Adv. Colloid
+#: Interface Sci. 82, 93, 1999); surface roughness of commercial beads is of the same order. A
+#: fixed gap, not a fraction of the radius: a 100 um sphere does not float 10 um up.
+DEFAULT_GAP = 100e-9
 
 
 def _positive(owner, key, value, allow_none=False, allow_zero=False):
@@ -62,9 +70,8 @@ class Body:
     density : float
         kg/m^3.
     height : float, optional
-        Height of the centre above the floor, m. Default ``1.1 * radius``: a sedimented bead
-        resting a small gap above the floor (common practice, no source; the Faxen series is
-        valid from h/r = 1.1).
+        Height of the centre above the floor, m. Default ``radius + gap``: a sedimented body
+        resting on the floor. Must exceed ``radius`` (the wall drag grows without bound at contact).
     moment : tuple of 3 floats, optional
         Fixed magnetic moment, A m^2 (a permanent-magnet body that keeps its orientation).
     susceptibility : float, optional
@@ -83,6 +90,11 @@ class Body:
     drift_mobility : float, optional
         Plate-drift mobility, the calibration parameter of the vibrating-plate actuator (its units
         and default are documented in ``actuators.acoustic``).
+    gap : float, optional
+        Gap between the body's surface and the floor, m, used when ``height`` is not given
+        (``height = radius + gap``); with neither, the gap is :data:`DEFAULT_GAP` (100 nm). Kept as
+        given (``None`` if not); if both are given they must agree to 1e-9 of the radius. It takes
+        no part in equality, which ``height`` decides; :attr:`clearance` is always ``height - radius``.
     """
 
     name: str
@@ -98,6 +110,7 @@ class Body:
     shell: Shell | None = None
     drift_mobility: float | None = None
     extra: tuple = field(default=(), compare=True)
+    gap: float | None = field(default=None, compare=False)
 
     def __post_init__(self):
         owner = f"Body {self.name!r}"
@@ -105,14 +118,25 @@ class Body:
             raise FieldplanError(f"Body name must be a non-empty string, got {self.name!r}.")
         _positive(owner, "radius", self.radius)
         _positive(owner, "density", self.density)
+        _positive(owner, "gap", self.gap, allow_none=True)
         if self.height is None:
-            object.__setattr__(self, "height", 1.1 * float(self.radius))
+            gap = DEFAULT_GAP if self.gap is None else float(self.gap)
+            object.__setattr__(self, "height", float(self.radius) + gap)
         _positive(owner, "height", self.height)
         if self.height < self.radius * (1 - 1e-12):
             raise FieldplanError(
                 f"{owner}: height {self.height} m is below its radius {self.radius} m: the body "
                 "would be inside the floor."
             )
+        if self.gap is not None and abs(self.height - self.radius - self.gap) > 1e-9 * self.radius:
+            # No silent winner: with dataclasses.replace, change one of them and pass the other as None.
+            raise FieldplanError(
+                f"{owner}: height {self.height} m and gap {self.gap} m disagree (height = radius + gap would be "
+                f"{self.radius + self.gap} m); give only one of them.")
+        if not self.height > self.radius:
+            raise FieldplanError(
+                f"{owner}: height {self.height} m equals its radius: a body touching the floor has unbounded "
+                f"wall drag. Give it a gap (e.g. gap={DEFAULT_GAP:g} m, a resting bead's double-layer gap).")
         if self.moment is not None:
             m = np.asarray(self.moment, dtype=float)
             if m.shape != (3,) or not np.all(np.isfinite(m)):
@@ -129,6 +153,11 @@ class Body:
         if self.shell is not None and not isinstance(self.shell, Shell):
             raise FieldplanError(f"{owner}: shell must be a fieldplan.Shell, got {type(self.shell).__name__}.")
         _positive(owner, "drift_mobility", self.drift_mobility, allow_none=True)
+
+    @property
+    def clearance(self):
+        """Gap between the body's surface and the floor, ``height - radius``, m."""
+        return self.height - self.radius
 
     @property
     def volume(self):

@@ -8,21 +8,99 @@ import numpy as np
 
 from .errors import FieldplanError
 
-__all__ = ["Medium", "water", "air", "water_viscosity", "air_viscosity"]
+__all__ = ["Medium", "water", "air", "water_viscosity", "water_density", "iapws_viscosity", "air_viscosity"]
 
 
-def water_viscosity(temperature):
-    """Dynamic viscosity of liquid water at 0.1 MPa.
+#: IAPWS R12-08 reducing constants: temperature K, density kg/m^3, viscosity Pa s.
+_IAPWS_T, _IAPWS_RHO, _IAPWS_MU = 647.096, 322.0, 1e-6
+#: Coefficients H_i of the dilute-gas term (R12-08, Table 1).
+_IAPWS_H0 = np.array([1.67752, 2.20462, 0.6366564, -0.241605])
+#: Coefficients H_ij of the residual term (R12-08, Table 2); i indexes (1/T - 1)^i, j (rho - 1)^j.
+_IAPWS_H1 = np.zeros((6, 7))
+for (_i, _j), _v in {(0, 0): 5.20094e-1, (1, 0): 8.50895e-2, (2, 0): -1.08374, (3, 0): -2.89555e-1,
+                     (0, 1): 2.22531e-1, (1, 1): 9.99115e-1, (2, 1): 1.88797, (3, 1): 1.26613,
+                     (5, 1): 1.20573e-1, (0, 2): -2.81378e-1, (1, 2): -9.06851e-1, (2, 2): -7.72479e-1,
+                     (3, 2): -4.89837e-1, (4, 2): -2.57040e-1, (0, 3): 1.61913e-1, (1, 3): 2.57399e-1,
+                     (0, 4): -3.25372e-2, (3, 4): 6.98452e-2, (4, 5): 8.72102e-3, (3, 6): -4.35673e-3,
+                     (5, 6): -5.93264e-4}.items():
+    _IAPWS_H1[_i, _j] = _v
+del _i, _j, _v
 
-    Uses the correlation of Kestin, Sokolov and Wakeham (J. Phys. Chem. Ref. Data 7, 941, 1978),
-    ``log10(eta/eta20) = (20 - t)/(t + 96) * (1.2364 - 1.37e-3 (20 - t) + 5.7e-6 (20 - t)^2)``
-    with ``eta20 = 1.0016 mPa s``; it agrees with IAPWS R12-08 to better than 0.1 % between
-    0 and 100 degC (checked in the tests at 20 and 25 degC).
+
+def iapws_viscosity(temperature, density):
+    """Viscosity of water substance at a given temperature and density, IAPWS 2008 formulation.
+
+    IAPWS R12-08, "Release on the IAPWS Formulation 2008 for the Viscosity of Ordinary Water
+    Substance" (Huber et al., J. Phys. Chem. Ref. Data 38, 101, 2009): ``mu = mu0(T) mu1(T, rho)``
+    with the dilute-gas term ``mu0 = 100 sqrt(T) / sum_i H_i / T^i`` and the residual term
+    ``mu1 = exp(rho sum_ij H_ij (1/T - 1)^i (rho - 1)^j)`` in reduced units (T / 647.096 K,
+    rho / 322 kg/m^3, mu / 1 uPa s). The critical enhancement ``mu2`` is taken as 1: the release
+    gives it as significant only in a small region around the critical point, far from liquid
+    water at atmospheric pressure.
 
     Parameters
     ----------
     temperature : float
-        Kelvin, 273.15 to 373.15.
+        K (the release covers 253.15 K to 1173.15 K at the pressures of interest here).
+    density : float
+        kg/m^3.
+
+    Returns
+    -------
+    float
+        Pa s.
+
+    Examples
+    --------
+    >>> round(iapws_viscosity(298.15, 998.0) * 1e6, 6)        # R12-08, Table 4
+    889.7351
+    """
+    T, rho = float(temperature), float(density)
+    if not (np.isfinite(T) and np.isfinite(rho) and T > 0 and rho > 0):
+        raise FieldplanError(f"IAPWS viscosity: temperature and density must be positive, got {T!r} K, {rho!r} kg/m^3.")
+    t, d = T / _IAPWS_T, rho / _IAPWS_RHO
+    mu0 = 100.0 * np.sqrt(t) / np.sum(_IAPWS_H0 / t ** np.arange(4))
+    powers = np.outer((1.0 / t - 1.0) ** np.arange(6), (d - 1.0) ** np.arange(7))
+    mu1 = np.exp(d * np.sum(_IAPWS_H1 * powers))
+    return float(mu0 * mu1 * _IAPWS_MU)
+
+
+def water_density(temperature):
+    """Density of air-free liquid water at atmospheric pressure, kg/m^3.
+
+    Kell, J. Chem. Eng. Data 20, 97 (1975), valid 0-150 degC; within about 0.01 kg/m^3 (1e-5)
+    of IAPWS-95 at 0.1 MPa between 0 and 100 degC (997.045 against 997.047 at 25 degC; the tests
+    check 0, 25, 60, 80 and 95 degC against IAPWS-95 values recalled from memory, to 0.02 kg/m^3).
+
+    Parameters
+    ----------
+    temperature : float
+        K.
+
+    Returns
+    -------
+    float
+        kg/m^3.
+    """
+    t = float(temperature) - 273.15
+    return (999.83952 + 16.945176 * t - 7.9870401e-3 * t**2 - 46.170461e-6 * t**3
+            + 105.56302e-9 * t**4 - 280.54253e-12 * t**5) / (1.0 + 16.879850e-3 * t)
+
+
+def water_viscosity(temperature):
+    """Dynamic viscosity of liquid water at atmospheric pressure, IAPWS 2008.
+
+    :func:`iapws_viscosity` (IAPWS R12-08) at the density :func:`water_density`. The Kell density
+    is within about 1e-5 (relative) of IAPWS-95, and |d ln(mu) / d ln(rho)| stays below 2 for the
+    liquid here (-0.35 at 25 degC, 1.9 at 95 degC), so the density moves the viscosity by about 2e-5 at most; the result carries the release's own
+    uncertainty for the liquid at 0.1 MPa (stated in R12-08). Between 0.1 MPa and 101.325 kPa
+    the difference is below 1e-6. The Kestin-Sokolov-Wakeham correlation used before was 0.26 %
+    low at 60 degC, 1.1 % at 80 degC and 2.4 % at 95 degC.
+
+    Parameters
+    ----------
+    temperature : float
+        Kelvin, 273.15 to 373.15 (liquid water at atmospheric pressure).
 
     Returns
     -------
@@ -40,8 +118,7 @@ def water_viscosity(temperature):
             f"water viscosity: temperature {temperature} K is outside 273.15-373.15 K "
             "(liquid water at atmospheric pressure)."
         )
-    d = 20.0 - t
-    return 1.0016e-3 * 10.0 ** (d / (t + 96.0) * (1.2364 - 1.37e-3 * d + 5.7e-6 * d * d))
+    return iapws_viscosity(temperature, water_density(temperature))
 
 
 def air_viscosity(temperature):
@@ -113,8 +190,8 @@ class Medium:
 def water(temperature=293.15, conductivity=1e-3):
     """Water at ``temperature`` (K) with the given conductivity (S/m).
 
-    Viscosity from :func:`water_viscosity`; density from the Kell (1975) fit for air-free water,
-    and relative permittivity from Malmberg and Maryott (J. Res. NBS 56, 1956):
+    Viscosity from :func:`water_viscosity` (IAPWS 2008); density from :func:`water_density` (Kell
+    1975), and relative permittivity from Malmberg and Maryott (J. Res. NBS 56, 1956):
     ``87.740 - 0.40008 t + 9.398e-4 t^2 - 1.410e-6 t^3`` with ``t`` in degC.
 
     Examples
@@ -125,9 +202,7 @@ def water(temperature=293.15, conductivity=1e-3):
     """
     t = float(temperature) - 273.15
     eta = water_viscosity(temperature)
-    # Kell, J. Chem. Eng. Data 20 (1975) 97, valid 0-150 degC.
-    rho = (999.83952 + 16.945176 * t - 7.9870401e-3 * t**2 - 46.170461e-6 * t**3
-           + 105.56302e-9 * t**4 - 280.54253e-12 * t**5) / (1.0 + 16.879850e-3 * t)
+    rho = water_density(temperature)
     eps_r = 87.740 - 0.40008 * t + 9.398e-4 * t**2 - 1.410e-6 * t**3
     return Medium("water", eta, float(temperature), rho, eps_r, float(conductivity), True)
 

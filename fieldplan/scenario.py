@@ -276,7 +276,8 @@ SCHEMA = {
         _k("count", "int", None, 1, "How many bodies of this kind (>= 1)."),
         _k("radius", "quantity", "m", None, "Radius.", required=True),
         _k("density", "quantity", "kg/m^3", None, "Density.", required=True),
-        _k("height", "quantity", "m", None, "Centre height above the floor (default 1.1 x radius)."),
+        _k("height", "quantity", "m", None, "Centre height above the floor (default radius + gap)."),
+        _k("gap", "quantity", "m", None, "Gap between body and floor, if height is not given (default 100 nm)."),
         _k("moment", "vector3", "A*m^2", None, "Fixed magnetic moment [mx, my, mz]."),
         _k("susceptibility", "number", None, None, "Intrinsic volume susceptibility of a soft bead."),
         _k("saturation_magnetization", "quantity", "A/m", None, "Saturation magnetisation."),
@@ -837,7 +838,7 @@ def _bodies(ctx, kinds):
         v = _read_keys(ctx, p, spec, "bodies[]")
         if v["count"] is not BAD and v["count"] is not None and v["count"] < 1:
             v["count"] = ctx.err(p + ("count",), f"must be a whole number >= 1, found {spec['count']!r}.")
-        for key in ("radius", "density", "height", "saturation_magnetization"):
+        for key in ("radius", "density", "height", "gap", "saturation_magnetization"):
             if isinstance(v.get(key), float) and not v[key] > 0:
                 v[key] = ctx.err(p + (key,), f"must be > 0, found {spec[key]!r}.")
         shell = None
@@ -857,7 +858,7 @@ def _bodies(ctx, kinds):
         if any(x is BAD for x in v.values()) or shell is BAD:
             ok = False
             continue
-        kw = {k: v[k] for k in ("radius", "density", "height", "moment", "susceptibility",
+        kw = {k: v[k] for k in ("radius", "density", "height", "gap", "moment", "susceptibility",
                                 "saturation_magnetization", "permittivity", "conductivity",
                                 "surface_conductance", "drift_mobility") if v[k] is not None}
         if v["kind"] in names:

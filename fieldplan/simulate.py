@@ -3,8 +3,9 @@
 Bodies are overdamped (velocity follows force at once), so the state is just the positions. Each
 segment is integrated with classical fourth-order Runge-Kutta steps whose length is bounded so that
 no step moves a body more than ``max_displacement``; Brownian increments (Stokes-Einstein with the
-Faxen wall factor) are added after each deterministic step (operator splitting); overlaps between
-bodies and with walls are then resolved by projection and counted as contact events.
+exact wall mobility of fieldplan.physics, the one the drift uses) are added after each
+deterministic step (operator splitting); overlaps between bodies and with walls are then resolved
+by projection and counted as contact events.
 """
 
 from __future__ import annotations
@@ -65,7 +66,7 @@ class Simulator:
     rng : int or numpy.random.Generator, optional
         Seed of Brownian and tracking noise.
     brownian : bool
-        Add thermal motion (Stokes-Einstein, with the Faxen wall factor).
+        Add thermal motion (Stokes-Einstein, with the exact wall mobility of the drag).
     tracking_noise : float
         Standard deviation of each observed coordinate, m.
     latency : float

@@ -514,15 +514,15 @@ def test_soft_force_quadratic(coils4):
 
 
 def test_velocity_is_force_over_wall_drag(coils4):
-    # Velocity = in-plane force / (Stokes drag x Faxen wall factor) (fieldplan.physics).
-    from fieldplan.physics import drag_coefficient, faxen_parallel, stokes_drag
+    # Velocity = in-plane force / (Stokes drag x exact wall factor) (fieldplan.physics).
+    from fieldplan.physics import drag_coefficient, stokes_drag, wall_drag_parallel
 
     arr = CoilArray(coils4, 0.0, bead_models="linear", extent=EXT)
     xy = np.array([[0.004, -0.002], [0.0, 0.0]])
     u = np.array([1.5, 0.0, -0.5, 0.2])
     F = arr.force(SOFT, xy, u)
     v = arr.velocity(SOFT, MED, xy, u)
-    drag = stokes_drag(SOFT.radius, MED.viscosity) / faxen_parallel(SOFT.radius, SOFT.height)
+    drag = stokes_drag(SOFT.radius, MED.viscosity) * wall_drag_parallel(SOFT.radius, SOFT.height)
     assert drag == pytest.approx(drag_coefficient(SOFT, MED))
     np.testing.assert_allclose(v, F[:, :2] / drag, rtol=1e-14)
 
