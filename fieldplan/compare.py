@@ -98,10 +98,25 @@ class RunResult:
         return 0
 
     @property
+    def schedule_origin(self):
+        """What :attr:`schedule` (``schedule.csv``) is, in words."""
+        if self.schedule is None:
+            return "no schedule"
+        if self.plan_source == "live":
+            seed = self.trials[0].seed if self.trials else self.scenario.simulation.seed
+            return (f"the inputs played in trial 1 of the closed loop (seed {seed}); each trial re-plans from "
+                    "its own tracked positions, so later trials played different inputs")
+        if self.plan_source == "replay":
+            return "the given schedule, replayed"
+        return "the planned open-loop schedule, played by every trial"
+
+    @property
     def message(self):
         parts = []
         if self.plan_source == "replay":
             parts.append("replayed the given schedule")
+        elif self.plan_source == "live" and self.schedule is not None:
+            parts.append("closed loop: schedule.csv holds the inputs played in trial 1")
         elif self.plan_success is not None:
             parts.append(("plan reached every goal" if self.plan_success else "plan did not reach every goal")
                          + (f" ({self.plan_message})" if self.plan_message and not self.plan_success else ""))
@@ -154,12 +169,16 @@ def _progress(iterable, total, show, desc):
 
 
 def _quantised(schedule, limits):
-    """Snap to the hardware time step when the schedule is not on it already."""
-    if limits is None or not limits.time_step or not schedule.n_segments:
+    """The schedule as exported: on the hardware time step, values on each channel's resolution.
+
+    Simulated and written alike, so the files hold exactly what the trials played
+    (:meth:`fieldplan.schedule.Schedule.quantise_values`).
+    """
+    if schedule is None or not schedule.n_segments:
         return schedule
-    if any(v[3] == "time_step" for v in schedule.violations(limits)):
-        return schedule.quantise(limits.time_step, limits.min_dwell or 0.0)
-    return schedule
+    if limits is not None and limits.time_step and any(v[3] == "time_step" for v in schedule.violations(limits)):
+        schedule = schedule.quantise(limits.time_step, limits.min_dwell or 0.0)
+    return schedule.quantise_values(limits)
 
 
 def replay_schedule_for(scenario, schedule):
@@ -246,7 +265,10 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
             pos = np.asarray(live.positions, dtype=float)
             m = compute_metrics(times, pos, sc.bodies, g, tol, sched, getattr(live, "events", ()))
             if k == 0:
-                run.schedule = sched
+                run.schedule = _quantised(sched, sc.limits)
+                if run.schedule is not None:
+                    run.schedule.meta["origin"] = (f"inputs played in trial 1 of the closed loop (seed {seed0}); "
+                                                   "later trials re-planned and played different inputs")
                 run.goals = g
                 run.step_times = list(getattr(live, "step_times", []) or [])
                 run.routes = getattr(live, "routes", None)
