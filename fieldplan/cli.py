@@ -81,7 +81,8 @@ def build_parser():
             Run every scenario file (a file with a `variants` list contributes one row per variant, a
             file without one row) for every seed, and write comparison.md, comparison.csv,
             comparison.json and comparison.png (bar chart) to the output folder. Runs go to local
-            worker processes, or to a dask.distributed scheduler with --scheduler.
+            worker processes, or to a dask.distributed scheduler with --scheduler. Exit code 0 when
+            the comparison ran (each variant's success is in the table), 1 only when every run failed.
             """,
             """
             fieldplan compare scenarios/compare-all.yaml --seeds 4 --out cmp
@@ -198,6 +199,16 @@ def _load(path, args):
     return sc
 
 
+def _note_variants(args, sc, command, verb):
+    """Say that ``run``/``inspect`` use the base scenario of a file with ``variants`` (never silently)."""
+    if sc.variants:
+        n = len(sc.variants)
+        _warn(args, f"{sc.source or sc.name} defines {n} variant{'s' if n != 1 else ''} "
+                    f"({', '.join(v.name for v in sc.variants[:4])}{', ...' if n > 4 else ''}); "
+                    f"`fieldplan {command}` {verb} the base scenario only. Run every variant with "
+                    f"`fieldplan compare {sc.source or '<file>'}`.")
+
+
 def _default_out(sc, suffix):
     base = os.path.splitext(os.path.basename(sc.source or sc.name))[0]
     return f"{base}-{suffix}"
@@ -209,6 +220,7 @@ def _cmd_run(args):
     from .export import check_output_folder, write_outputs  # noqa: PLC0415
 
     sc = _load(args.scenario, args)
+    _note_variants(args, sc, "run", "plans and simulates")
     out = args.out or _default_out(sc, "output")
     check_output_folder(out, args.force)
     schedule = None
@@ -324,13 +336,11 @@ def _cmd_compare(args):
         for m in r["error_messages"][:1]:
             _warn(args, f"variant {r['label']}: {len(r['error_messages'])} run(s) failed: {m}")
     _say(args, f"outputs in {out}:", "  comparison.md", "  comparison.csv", "  comparison.json", "  comparison.png")
-    failed = any(r["errors"] for r in cmp.rows)
-    below = False
-    for s, r in zip(scenarios, cmp.rows):
-        rate = r.get("success_rate")
-        if rate is not None and rate == rate and rate < s.simulation.required_success - 1e-12:
-            below = True
-    return EXIT_NOT_REACHED if (failed or below) else EXIT_OK
+    # The comparison is the result: it succeeded when it produced numbers, whatever each variant's
+    # success (a comparison whose failing variant is the point must not fail the command; the table
+    # marks each variant below its required rate). Exit 1 only when no run produced anything.
+    produced = any(r["runs"] > r["errors"] for r in cmp.rows)
+    return EXIT_OK if produced else EXIT_NOT_REACHED
 
 
 # ---------------------------------------------------------------------------------------------
@@ -345,6 +355,7 @@ def _cmd_inspect(args):
     from .schedule import atomic_write  # noqa: PLC0415
 
     sc = _load(args.scenario, args)
+    _note_variants(args, sc, "inspect", "inspects")
     out = os.path.abspath(args.out or _default_out(sc, "inspect"))
     check_output_folder(out, args.force)
     if args.counts:
@@ -545,7 +556,7 @@ def _cmd_schema(args):
     from .scenario import actuator_params, schema_reference  # noqa: PLC0415
 
     if not args.actuators_only:
-        print(schema_reference())
+        print(_with_planner_defaults(schema_reference()))
     print("### Registered actuators\n")
     for name, target in sorted(available_actuators().items()):
         try:
@@ -556,6 +567,58 @@ def _cmd_schema(args):
             desc = f"(cannot load: {exc})"
         print(f"- `{name}` ({target}): {desc}")
     return EXIT_OK
+
+
+def _numpydoc_params(doc):
+    """``{name: (type, one-line meaning)}`` from the Parameters section of a numpydoc docstring."""
+    import re  # noqa: PLC0415
+
+    lines = textwrap.dedent("\n".join((doc or "").splitlines()[1:])).splitlines()
+    out, names, kind, text, inside = {}, [], "", [], False
+    for line in lines + ["Returns"]:
+        if line.strip() == "Parameters":
+            inside = True
+            continue
+        if not inside or set(line.strip()) == {"-"}:
+            continue
+        m = re.match(r"^(\w[\w, ]*?)\s*:\s*(.*)$", line)
+        if m or line.strip() in ("Returns", "Attributes", "Notes", "Examples", "Raises", "See Also"):
+            for n in names:
+                out[n] = (kind, " ".join(text))
+            if not m:
+                if out:
+                    break
+                continue
+            names, kind, text = [n.strip() for n in m[1].split(",")], m[2].strip(), []
+        elif line.strip():
+            text.append(line.strip())
+    return out
+
+
+def _with_planner_defaults(reference):
+    """The scenario reference with the ``planner`` section's ``*`` row replaced by every
+    ``fieldplan.plan.PlanSettings`` field: its type, unit, default and meaning (from its docstring)."""
+    try:
+        from .scenario import PLANNER_UNITS, _planner_fields  # noqa: PLC0415
+
+        defaults, cls = _planner_fields()
+    except Exception:  # noqa: BLE001 - the reference must print even when the planner does not import
+        return reference
+    docs = _numpydoc_params(getattr(cls, "__doc__", ""))
+    rows = []
+    for name, default in defaults.items():
+        kind, meaning = docs.get(name, ("", ""))
+        kind = kind.replace(", optional", "").replace("|", "\\|") or type(default).__name__
+        shown = f"`{default}`" if default is not None else "automatic (see meaning)"
+        rows.append(f"| `{name}` | {kind} | {PLANNER_UNITS.get(name, '')} | {shown} | "
+                    f"{meaning.replace('|', chr(92) + '|')} |")
+    lines = reference.splitlines()
+    try:
+        start = lines.index("### `planner`")
+        star = next(i for i in range(start, len(lines)) if lines[i].startswith("| `*` |"))
+    except (ValueError, StopIteration):
+        return reference
+    return "\n".join(lines[:star] + rows + lines[star + 1:])
 
 
 _COMMANDS = {"run": _cmd_run, "compare": _cmd_compare, "inspect": _cmd_inspect, "validate": _cmd_validate,
