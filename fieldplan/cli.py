@@ -150,6 +150,9 @@ def build_parser():
     f.add_argument("--primitives", default=None, help="fit only these primitives (comma list)")
     f.add_argument("--units", default=None, help="units of columns without [unit] in the header: col=unit,...")
     f.add_argument("--no-plots", action="store_true", help="skip the report plots")
+    f.add_argument("--note", default=None,
+                   help="free text stored in the actuator JSON (e.g. where the data came from); default: "
+                        "the note of the actuator file being replaced, if any")
     f.add_argument("--quiet", "-q", action="store_true", help="print errors only")
 
     s = add("schema", "print the scenario key reference and the registered actuators",
@@ -536,8 +539,11 @@ def _cmd_fit(args):
             k, u = item.split("=", 1)
             units[k.strip()] = u.strip()
     prims = [p.strip() for p in args.primitives.split(",")] if args.primitives else None
+    note = args.note if args.note is not None else _previous_note(os.path.join(args.out, f"{args.name}.json"))
+    if args.note is None and note:
+        _say(args, f"keeping the note of the actuator being replaced: {note!r} (change it with --note)")
     rep = calibrate_command(args.tracks, args.out, primitives=prims, units=units, idle=args.idle, name=args.name,
-                            plots=not args.no_plots, warn=False)
+                            plots=not args.no_plots, warn=False, note=note)
     for w in rep.get("warnings", []):
         _warn(args, w)
     for row in rep.get("fields", [])[:40]:
@@ -549,6 +555,16 @@ def _cmd_fit(args):
          *[f"plot: {p}" for p in (rep.get("plots") or {}).values()],
          f"use it in a scenario as: actuator: {{type: calibrated, path: {rep['actuator']}}}")
     return EXIT_OK
+
+
+def _previous_note(path):
+    """The ``note`` of an existing calibrated-actuator JSON (None if absent or unreadable)."""
+    try:
+        with open(path, encoding="utf-8") as fh:
+            note = json.load(fh).get("note")
+    except (OSError, ValueError, AttributeError):
+        return None
+    return note if isinstance(note, str) and note else None
 
 
 def _cmd_schema(args):
