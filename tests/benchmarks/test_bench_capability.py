@@ -33,7 +33,7 @@ from actuators.magnetic import Coil, CoilArray
 from fieldplan import Body, ChannelLimit, HardwareLimits, Shell, Workspace, air, circle, water
 from fieldplan.live import closed_loop
 from fieldplan.plan import PlanSettings
-from fieldplan.steer import basis_function, count_curve
+from fieldplan.steer import basis_function, count_curve, counting_limit
 
 FULL = os.environ.get("FIELDPLAN_FULL") == "1"
 TRIALS = 20 if FULL else 4
@@ -93,9 +93,7 @@ def counting_bound(case):
     body = case["bodies"](1)
     xy = ws.sample(1, body[0].radius, 0)
     b = case["actuator"].basis(body, ws.medium, xy)
-    if b.mode == "linear":
-        return b.mode, b.size, b.size / 2.0
-    return b.mode, b.size, (b.size - 1) / 2.0
+    return b.mode, b.size, counting_limit(b)   # the one definition (fieldplan.steer)
 
 
 def _reason(message):
