@@ -206,8 +206,9 @@ def _note_variants(args, sc, command, verb):
     """Say that ``run``/``inspect`` use the base scenario of a file with ``variants`` (never silently)."""
     if sc.variants:
         n = len(sc.variants)
+        names = [v.name[len(sc.name) + 1:] if v.name.startswith(sc.name + "/") else v.name for v in sc.variants]
         _warn(args, f"{sc.source or sc.name} defines {n} variant{'s' if n != 1 else ''} "
-                    f"({', '.join(v.name for v in sc.variants[:4])}{', ...' if n > 4 else ''}); "
+                    f"({', '.join(names[:4])}{', ...' if n > 4 else ''}); "
                     f"`fieldplan {command}` {verb} the base scenario only. Run every variant with "
                     f"`fieldplan compare {sc.source or '<file>'}`.")
 

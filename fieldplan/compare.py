@@ -567,7 +567,7 @@ class Comparison:
             elif key in ("final_error", "min_separation"):
                 texts = ["n/a" if not np.isfinite(v) else f"{v / t:.2g}\n({format_quantity(v, unit)})"
                          for v, t in zip(vals, tol)]
-                panels.append((key, f"{title} / arrival radius", vals / tol, sds / tol, "-", texts))
+                panels.append((key, f"{title} / arrival radius", vals / tol, sds / tol, "1", texts))
             elif key == "input_power_fs":
                 panels.append((key, title, vals, sds, "% of full scale",
                                ["n/a" if not np.isfinite(v) else f"{v:.3g} %" for v in vals]))
@@ -609,7 +609,8 @@ class Comparison:
                             ha="center", va="bottom", fontsize=7.5)
             ax.set_xticks(x, short, rotation=20 if wide else 0, ha="right" if wide else "center", fontsize=8)
             ax.set_title(title, fontsize=10)
-            ax.set_ylabel(axis_label(title if len(title) < 28 else title.split(" / ")[0], ulabel), fontsize=9)
+            short_title = title.replace("final error", "error").replace("min separation", "separation")
+            ax.set_ylabel(axis_label(short_title, ulabel), fontsize=9)
             ax.grid(axis="y", alpha=0.3)
         for ax in list(axes.flat)[n:]:
             ax.set_visible(False)
