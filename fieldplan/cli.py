@@ -475,8 +475,12 @@ def _count_figure(cc, body):
                 label=f"{body.name} ({cc.trials} random configurations each; bars: 95 % Wilson interval)")
     from .steer import counting_rule  # noqa: PLC0415
 
-    ax.axvline(cc.counting_limit, color="k", ls="--", lw=0.8,
-               label=f"counting limit {counting_rule(cc.mode)} = {cc.counting_limit:g}")
+    label = f"counting limit {counting_rule(cc.mode)} = {cc.counting_limit:g}"
+    if cc.counting_limit <= c.max() + 1:
+        ax.axvline(cc.counting_limit, color="k", ls="--", lw=0.8, label=label)
+    else:
+        # Far beyond the counts tried: name it rather than squash the curve against one edge.
+        ax.plot([], [], color="k", ls="--", lw=0.8, label=label + " (beyond the counts tried)")
     ax.set_xlabel(axis_label("number of bodies N", "1"))
     from matplotlib.ticker import MaxNLocator  # noqa: PLC0415
 

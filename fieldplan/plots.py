@@ -342,10 +342,11 @@ def plot_timeline(times, positions, goals, bodies, *, tolerance=None, predicted=
         if predicted is not None:
             pt, pp = predicted
             pp = np.asarray(pp, dtype=float)
-            axes[0].plot(pt, pp[:, i, 0] * f, color=c, ls=":", lw=1.0)
-            axes[1].plot(pt, pp[:, i, 1] * f, color=c, ls=":", lw=1.0)
-            axes[2].plot(pt, np.maximum(np.linalg.norm(pp[:, i] - goals[i], axis=1), 1e-12) * f, color=c,
-                         ls=":", lw=1.0)
+            # On top of every simulated curve, dark so it shows over a wide one of the same colour.
+            pred = {"color": "0.1", "ls": ":", "lw": 1.0, "alpha": 0.8, "zorder": 3 + n}
+            axes[0].plot(pt, pp[:, i, 0] * f, **pred)
+            axes[1].plot(pt, pp[:, i, 1] * f, **pred)
+            axes[2].plot(pt, np.maximum(np.linalg.norm(pp[:, i] - goals[i], axis=1), 1e-12) * f, **pred)
     tol = [b.radius for b in bodies] if tolerance is None else [tolerance]
     axes[2].axhline(min(tol) * f, color="k", ls="--", lw=0.8)
     axes[2].set_yscale("log")
@@ -360,7 +361,7 @@ def plot_timeline(times, positions, goals, bodies, *, tolerance=None, predicted=
     handles = [Line2D([], [], **style(i), label=f"body {i} ({b.name})") for i, b in enumerate(bodies)]
     handles += [Line2D([], [], color="0.3", lw=1.5, label="simulated")]
     if predicted is not None:
-        handles.append(Line2D([], [], color="0.3", ls=":", lw=1.0, label="predicted"))
+        handles.append(Line2D([], [], color="0.1", ls=":", lw=1.0, alpha=0.8, label="predicted"))
     handles += [Line2D([], [], color="0.3", ls="--", lw=0.6, label="goal"),
                 Line2D([], [], color="k", ls="--", lw=0.8, label="arrival radius")]
     axes[0].legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
@@ -442,10 +443,12 @@ def _limit_lines(ax, lim, colour, unit):
         if val is not None:
             ax.axhline(val, color=colour, ls="--", lw=0.7, alpha=0.8)
     if lim.rms is not None:
-        win = f", {lim.rms_window:g} s window" if lim.rms_window else ""
+        from .units import format_quantity  # noqa: PLC0415
+
+        win = f", {format_quantity(lim.rms_window, 's')} window" if lim.rms_window else ""
         for s in (-1, 1):
             ax.axhline(s * lim.rms, color=colour, ls="-.", lw=0.7, alpha=0.8)
-        return f"RMS limit {lim.rms:g} {unit}{win}"
+        return f"RMS limit {format_quantity(lim.rms, '1' if unit == 'dimensionless' else unit)}{win}"
     return None
 
 
@@ -513,7 +516,9 @@ def plot_inputs(schedule, *, limits=None):
                                       gridspec_kw={"height_ratios": [p[2] for p in panels]})[:, 0])
     edges = np.linspace(t0, t1, _BINS + 1) if dense else None
     width = (t1 - t0) / _BINS
-    wlab = f"{width * 1e3:.3g} ms" if width < 1 else f"{width:.3g} s"
+    from .units import format_quantity  # noqa: PLC0415
+
+    wlab = format_quantity(width, "s")
     t = np.append(starts, t1)
     for ax, (kind, payload, _) in zip(axes, panels):
         if kind in ("lines", "heat"):
@@ -585,7 +590,7 @@ def plot_inputs(schedule, *, limits=None):
                 ax.set_ylabel(axis_label("frequency", "Hz"))
             else:
                 ax.set_ylabel(axis_label(chans[ks[0]].name + "\n", shown).replace("\n ", "\n") if single
-                              else axis_label("value", shown),
+                              else axis_label(chans[ks[0]].name if len(ks) == 1 else "value", shown),
                               fontsize=8 if single else None)
             if single:
                 handles = handles[1:]
@@ -602,13 +607,13 @@ def plot_inputs(schedule, *, limits=None):
             duty = _bin_average(starts, durs, ind, edges)
             img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
                             extent=(t0, t1, -0.5, len(u) - 0.5), cmap="Greys", norm=_duty_norm())
-            fig.colorbar(img, ax=ax, pad=0.01, label=axis_label(f"fraction of each {wlab} (sqrt scale)", "1"))
+            fig.colorbar(img, ax=ax, pad=0.01, label=axis_label("share of bin", "1"))
             if c.unit == "Hz":
                 from matplotlib.ticker import EngFormatter  # noqa: PLC0415
 
                 labs = [EngFormatter(unit="Hz", places=0)(x) for x in u]
             else:
-                labs = [f"{x:.3g} {c.unit}" for x in u]
+                labs = [format_quantity(x, c.unit) for x in u]
             ax.set_yticks(range(len(u)), labs, fontsize=7)
             ax.set_ylabel(f"{c.name} played")
         else:
@@ -619,7 +624,7 @@ def plot_inputs(schedule, *, limits=None):
                 duty = _bin_average(starts, durs, ind, edges)
                 img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
                                 extent=(t0, t1, -0.5, len(payload) - 0.5), cmap="Greys", norm=_duty_norm())
-                fig.colorbar(img, ax=ax, pad=0.01, label=axis_label(f"fraction of each {wlab} (sqrt scale)", "1"))
+                fig.colorbar(img, ax=ax, pad=0.01, label=axis_label("share of bin, sqrt scale", "1"))
             else:
                 for i, name in enumerate(payload):
                     spans = [(s, d) for s, d, lab in zip(starts, durs, schedule.labels) if lab == name]

@@ -124,7 +124,8 @@ def plot_count_curve(curves, *, title=None, ax=None):
         x = c.counts + 0.08 * (i - (m - 1) / 2)
         ax.errorbar(x, c.fraction, yerr=yerr, marker="o", capsize=3, color=color, label=label)
         limit = c.rank_limit if np.isfinite(c.rank_limit) else c.counting_limit
-        ax.axvline(limit, color=color, ls="--", lw=0.8)
+        if limit <= np.max(c.counts) + 1:   # a limit far beyond the counts would squash the curves
+            ax.axvline(limit, color=color, ls="--", lw=0.8)
     ax.plot([], [], color="0.3", ls="--", lw=0.8,
             label="counting limit: K/2 (K channels) or (M - 1)/2 (M primitives), or field rank/2 if lower")
     # Say what the whiskers are: a binomial proportion's 95 % Wilson score interval over the trials.
