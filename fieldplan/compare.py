@@ -431,26 +431,33 @@ def _task(scenario, seed, trials):
     except FieldplanError as exc:
         return {"error": str(exc)}
     agg = run.aggregate()
-    agg["input_power_fs"] = _full_scale_fraction(scenario, run, agg.get("input_energy"))
+    agg["input_power_fs"] = _full_scale_fraction(scenario, run)
     agg["plan_success"] = run.plan_success
     agg["plan_message"] = run.plan_message if run.plan_success is False else ""
     agg["successes"] = sum(t.success for t in run.trials)
     return agg
 
 
-def _full_scale_fraction(scenario, run, energy):
-    """Mean input power as a fraction of full scale, %: ``energy / (sum_k max|bound_k|^2 * duration)``.
+def _full_scale_fraction(scenario, run):
+    """Mean input power as a percentage of full scale: ``energy / (sum_k max|bound_k|^2 * duration)``.
 
-    Over the continuous channels only (as the input energy). Dimensionless, so variants driven in
-    different units (coil amperes, plate-amplifier volts, electrode volts) share one axis; nan
-    without a schedule.
+    Over the continuous channels only (as the input energy), per trial on the schedule that trial
+    played (closed loop: its own), then averaged. Dimensionless, so variants driven in different
+    units (coil amperes, plate-amplifier volts, electrode volts) share one axis; nan without a
+    schedule.
     """
-    sched = run.schedule
-    if energy is None or sched is None or not sched.duration > 0:
+    keep = run._energy_channels()
+    full = sum(max(abs(c.lower), abs(c.upper)) ** 2 for c in scenario.actuator.channels if c.name in keep)
+    if not full > 0:
         return float("nan")
-    full = sum(max(abs(c.lower), abs(c.upper)) ** 2 for c in scenario.actuator.channels
-               if not c.values and np.isfinite(c.lower) and np.isfinite(c.upper))
-    return 100.0 * float(energy) / (full * sched.duration) if full > 0 else float("nan")
+    played = [t.schedule if t.schedule is not None else run.schedule for t in run.trials] or [run.schedule]
+    out = []
+    for sched in played:
+        if sched is None or not sched.duration > 0:
+            continue
+        energy = sum(e for c, e in zip(sched.channels, sched.energy()) if c.name in keep)
+        out.append(100.0 * float(energy) / (full * sched.duration))
+    return float(np.mean(out)) if out else float("nan")
 
 
 def arrival_tolerance(scenario):

@@ -152,7 +152,7 @@ def test_input_power_is_a_fraction_of_full_scale():
     sched = Schedule.from_segments(ch, [Segment(0, 2.0, u)])
     run = RunResult(sc, sched, np.zeros((1, 2)))
     full = sum(max(abs(c.lower), abs(c.upper)) ** 2 for c in ch)
-    frac = _full_scale_fraction(sc, run, float(sched.energy().sum()))
+    frac = _full_scale_fraction(sc, run)
     assert frac == pytest.approx(100 * 0.25 * ch[0].upper ** 2 / full)
     assert arrival_tolerance(sc) == pytest.approx(20e-6)
     assert arrival_tolerance(load_scenario(BASE.replace("  tolerance: 20 um\n", "  horizon: 1\n"), name="y")) \
