@@ -729,7 +729,7 @@ def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n
     return fig
 
 
-def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=12, dpi=80):
+def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=12, dpi=80, actuator=None):
     """Write a GIF of the bodies moving (matplotlib's PillowWriter).
 
     Parameters
@@ -746,6 +746,8 @@ def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=
         m.
     frames : int
         Number of frames (evenly spaced in time).
+    actuator : Actuator, optional
+        Its ``outlines()`` (electrode pads), if any, are drawn under the bodies.
 
     Returns
     -------
@@ -762,6 +764,8 @@ def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=
     fig = _figure(figsize=(5.0, 5.0 * (ymax - ymin) / (xmax - xmin) + 0.6), layout="constrained")
     FigureCanvasAgg(fig)
     ax = fig.add_subplot()
+    if actuator is not None:
+        draw_outlines(ax, actuator, f)
     _draw_workspace(ax, workspace, f)
     goals = np.asarray(goals, dtype=float)
     ax.scatter(goals[:, 0] * f, goals[:, 1] * f, marker="x", c=[f"C{i % 10}" for i in range(len(bodies))],
