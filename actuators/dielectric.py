@@ -503,6 +503,10 @@ class ElectrodeArray(Actuator):
                 f"({', '.join(_freq_label(f) for f in self.frequencies)}), |V| <= {self.voltage_limit:g} V, "
                 f"{len(self.primitives())} primitives")
 
+    def outlines(self):
+        """Electrode shapes on the floor (shapely polygons, m), drawn under the run figures."""
+        return self.layout.polygons
+
     def primitives(self):
         """Every voltage pattern at every allowed frequency, named ``<pattern>@<frequency>``."""
         if self._prims is None:

@@ -8,6 +8,7 @@ import numpy as np
 import shapely
 from shapely.geometry import MultiPolygon, Point, Polygon, box
 
+from .body import check_positions
 from .errors import WorkspaceError
 from .medium import Medium
 
@@ -117,12 +118,12 @@ class Workspace:
 
     def contains(self, xy, radius=0.0):
         """Whether each centre in ``xy`` (n, 2) m is free for a body of ``radius`` m, bool (n,)."""
-        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        xy = check_positions(xy, "xy", error=WorkspaceError)
         return shapely.contains_xy(self.free_space(float(radius)), xy[:, 0], xy[:, 1])
 
     def clearance(self, xy):
         """Distance (m) from each point to the nearest wall or obstacle; negative inside a solid."""
-        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        xy = check_positions(xy, "xy", error=WorkspaceError)
         pts = shapely.points(xy)
         d = shapely.distance(self._walls_geom, pts)
         inside = self.contains(xy, 0.0)
@@ -150,7 +151,7 @@ class Workspace:
             Unit vectors; the keep-out half-plane for a body of radius r at x is
             ``normals . (x - points) >= r``.
         """
-        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        xy = check_positions(xy, "xy", error=WorkspaceError)
         pts = shapely.points(xy)
         near = shapely.get_coordinates(shapely.shortest_line(self._walls_geom, pts))
         wall_pts = near[0::2]
@@ -165,7 +166,7 @@ class Workspace:
 
     def project(self, xy, radius):
         """Move points outside the free space of ``radius`` to its nearest point (m); returns (xy, moved)."""
-        xy = np.array(np.atleast_2d(xy), dtype=float)
+        xy = check_positions(xy, "xy", error=WorkspaceError).copy()
         free = self.free_space(float(radius))
         ok = shapely.contains_xy(free, xy[:, 0], xy[:, 1])
         if np.all(ok):

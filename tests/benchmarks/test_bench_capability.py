@@ -39,7 +39,7 @@ from fieldplan import Body, ChannelLimit, HardwareLimits, Shell, Workspace, air,
 from fieldplan.live import closed_loop
 from fieldplan.plan import PlanSettings
 from fieldplan.planning import Controller
-from fieldplan.steer import _wilson, basis_function, count_curve, steerable
+from fieldplan.steer import _wilson, basis_function, count_curve, counting_limit, steerable
 
 from peers import PEERS, run_peer
 
@@ -128,9 +128,7 @@ def counting_bound(case):
     body = case["bodies"](1)
     xy = ws.sample(1, body[0].radius, 0)
     b = case["actuator"].basis(body, ws.medium, xy)
-    if b.mode == "linear":
-        return b.mode, b.size, b.size / 2.0
-    return b.mode, b.size, (b.size - 1) / 2.0
+    return b.mode, b.size, counting_limit(b)   # the one definition (fieldplan.steer)
 
 
 def draw_task(case, N, seed):
