@@ -146,14 +146,14 @@ def test_accepted_iterations_never_raise_the_true_cost():
         H = ctrl.horizon
         starts_W = [np.tile(ctrl._idle_rate, (H, 1))]
         if prev_W is not None:
-            starts_W.append(np.vstack([prev_W[1:], prev_W[-1:]]))
+            starts_W.append(prev_W)             # the previous plan, already shifted by the controller
         played_now = ctrl._prev.copy()
         ctrl._prev = prev_played if prev_played is not None else ctrl._idle_rate.copy()
         Ws = ctrl._project(np.asarray(starts_W), lower, upper, rows, rhs)
         X, _, _, _, pushed = ctrl._rollout(p, Ws)
         start_cost = ctrl._merit(X, Ws, pushed)
-        Xk, _, _, _, pk = ctrl._rollout(p, ctrl._W[None])
-        kept = ctrl._merit(Xk, ctrl._W[None], pk)[0]
+        Xk, _, _, _, pk = ctrl._rollout(p, ctrl.plan_weights[None])
+        kept = ctrl._merit(Xk, ctrl.plan_weights[None], pk)[0]
         ctrl._prev = played_now
         assert kept <= start_cost.min() * (1 + 1e-12)
         p = ctrl.predict(p, segs)

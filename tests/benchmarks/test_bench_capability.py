@@ -92,8 +92,7 @@ def plate_case():
     grain = Body("sand-1mm", radius=0.5e-3, density=2600.0)
     return dict(name="plate (24 tones, sand in air)", actuator=_plate(24, (150.0, 1500.0)), workspace=ws,
                 bodies=lambda n: [grain] * n, limits=HardwareLimits(time_step=0.02, min_dwell=0.04),
-                settings=PlanSettings(tolerance=3e-3, clearance=1e-3, time_limit=300.0, replan_every=4),
-                tracking=20e-6,
+                settings=PlanSettings(tolerance=3e-3, clearance=1e-3, time_limit=300.0), tracking=20e-6,
                 region=shapely.box(-0.06, -0.06, 0.06, 0.06), Ns=(1, 2, 3, 4) if FULL else (2, 3))
 
 
