@@ -51,9 +51,82 @@ class _Bad:
 BAD = _Bad()
 
 
+class _NotImported:
+    """Marker for an actuator whose module was not imported (``check_only``): its section is unchecked."""
+
+    def __repr__(self):
+        return "<actuator not imported>"
+
+
+NOT_IMPORTED = _NotImported()
+
+
 # ----------------------------------------------------------------------------------------------
 # YAML with line numbers
 # ----------------------------------------------------------------------------------------------
+
+#: Resource limits on a scenario file, so that no file can make reading it use unbounded memory or
+#: time (each is documented in the README; a file beyond one is refused with the line concerned).
+MAX_FILE_CHARS = 50_000_000     # size of the file, characters
+MAX_DEPTH = 64                  # nesting depth of lists and mappings (after alias expansion)
+MAX_NODES = 2_000_000           # YAML values (scalars, lists, mappings), aliases expanded
+MAX_ALIAS_NODES = 100_000       # values reached through aliases (``*name``), in total
+MAX_BODIES = 1_000              # bodies in one scenario (sum of the counts)
+MAX_OBSTACLES = 100_000         # obstacles in one workspace
+MAX_DPI = 1200                  # outputs.dpi
+
+
+class _TooBig(Exception):
+    """A resource limit of the YAML reader was reached (line 1-based, message)."""
+
+    def __init__(self, line, message):
+        super().__init__(message)
+        self.line, self.message = line, message
+
+
+class _BoundedLoader(yaml.SafeLoader):
+    """PyYAML's safe loader with a nesting-depth and node-count bound while composing.
+
+    PyYAML composes recursively, so a deeply nested file would otherwise end in RecursionError.
+    """
+
+    def __init__(self, text, max_depth, max_nodes):
+        super().__init__(text)
+        self._depth, self._nodes = 0, 0
+        self._max_depth, self._max_nodes = max_depth, max_nodes
+
+    def compose_node(self, parent, index):
+        self._depth += 1
+        self._nodes += 1
+        try:
+            if self._depth > self._max_depth:
+                raise _TooBig(self.peek_event().start_mark.line + 1,
+                              f"lists and mappings are nested more than {self._max_depth} deep "
+                              "(fieldplan.scenario.MAX_DEPTH).")
+            if self._nodes > self._max_nodes:
+                raise _TooBig(self.peek_event().start_mark.line + 1,
+                              f"the file holds more than {self._max_nodes} values (fieldplan.scenario.MAX_NODES).")
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+
+
+def _merged_size(node, memo):
+    """Number of key/value pairs a mapping has once its ``<<`` merge keys are expanded (memoised)."""
+    key = id(node)
+    if key in memo:
+        return memo[key]
+    memo[key] = 0                      # a merge cycle counts as nothing rather than recursing forever
+    total = 0
+    for kn, vn in node.value:
+        if kn.tag == "tag:yaml.org,2002:merge":
+            subs = vn.value if isinstance(vn, yaml.SequenceNode) else [vn]
+            total += sum(_merged_size(m, memo) for m in subs if isinstance(m, yaml.MappingNode))
+        else:
+            total += 1
+    memo[key] = total
+    return total
+
 
 # Tags of plain data; anything else (!!python/..., !!binary, timestamps) is refused.
 _PLAIN_TAGS = {f"tag:yaml.org,2002:{t}" for t in ("str", "int", "float", "bool", "null", "seq", "map")}
@@ -118,6 +191,9 @@ def _nearest_key(text, line):
 def read_yaml(text, file="<scenario>"):
     """Parse YAML ``text`` with the safe loader, keeping the line of every key.
 
+    Reading is bounded (:data:`MAX_DEPTH`, :data:`MAX_NODES`, :data:`MAX_ALIAS_NODES`): an alias
+    bomb or a deeply nested file is refused with its line after a bounded amount of work.
+
     Parameters
     ----------
     text : str
@@ -132,8 +208,8 @@ def read_yaml(text, file="<scenario>"):
     Raises
     ------
     ScenarioError
-        Malformed YAML (with the line and the nearest key), more than one document, or a duplicate
-        key in a mapping.
+        Malformed YAML (with the line and the nearest key), more than one document, a duplicate
+        key in a mapping, or a resource limit reached.
 
     Examples
     --------
@@ -141,11 +217,22 @@ def read_yaml(text, file="<scenario>"):
     >>> doc.data, doc.line(("a", "c", 1))
     ({'a': {'b': '5 um', 'c': [1, 2]}}, 3)
     """
-    loader = yaml.SafeLoader(text)
+    max_depth, max_nodes, max_alias = MAX_DEPTH, MAX_NODES, MAX_ALIAS_NODES
+    loader = _BoundedLoader(text, max_depth, max_nodes)
     problems = []
+
+    def too_big(line, message):
+        return ScenarioError([(file, line, _nearest_key(text, line or 1),
+                               f"{message} Scenario files are limited so that reading one cannot exhaust memory "
+                               "or time; simplify the file (see the README's limits).")])
+
     try:
         try:
             node = loader.get_single_node()
+        except _TooBig as exc:
+            raise too_big(exc.line, exc.message) from None
+        except RecursionError:
+            raise too_big(None, "the file is nested too deeply to read.") from None
         except yaml.MarkedYAMLError as exc:
             # The context mark is where the broken construct began (an unclosed bracket, a key
             # missing its colon); the problem mark is where the parser noticed. Point at the first.
@@ -166,14 +253,36 @@ def read_yaml(text, file="<scenario>"):
         if node is None:
             return YamlDoc(None, {(): 1}, file, text)
         lines[()] = node.start_mark.line + 1
+        seen = set()
+        count = {"nodes": 0, "alias": 0}
+        merge_memo = {}
 
-        def walk(n, path):
+        def walk(n, path, via_alias=False):
+            # A node met a second time is an alias (*name) being expanded: bound the total work.
+            via_alias = via_alias or id(n) in seen
+            seen.add(id(n))
+            count["nodes"] += 1
+            if via_alias:
+                count["alias"] += 1
+                if count["alias"] > max_alias:
+                    raise _TooBig(n.start_mark.line + 1, f"aliases (*name) expand to more than {max_alias} values "
+                                                         "(fieldplan.scenario.MAX_ALIAS_NODES).")
+            if count["nodes"] > max_nodes:
+                raise _TooBig(n.start_mark.line + 1, f"the file expands to more than {max_nodes} values "
+                                                     "(fieldplan.scenario.MAX_NODES).")
+            if len(path) > max_depth:
+                raise _TooBig(n.start_mark.line + 1, f"lists and mappings are nested more than {max_depth} deep "
+                                                     "once aliases are expanded (fieldplan.scenario.MAX_DEPTH).")
             if n.tag not in _PLAIN_TAGS:
                 problems.append((file, n.start_mark.line + 1, key_string(path) or "(top level)",
                                  f"YAML tag {n.tag!r} is not allowed: scenario files hold plain data only "
                                  "(numbers, text, lists, mappings)."))
                 return None
             if isinstance(n, yaml.MappingNode):
+                if any(kn.tag == "tag:yaml.org,2002:merge" for kn, _ in n.value) and \
+                        _merged_size(n, merge_memo) > max_alias:
+                    raise _TooBig(n.start_mark.line + 1, f"merge keys (<<) expand to more than {max_alias} entries "
+                                                         "(fieldplan.scenario.MAX_ALIAS_NODES).")
                 loader.flatten_mapping(n)
                 out = {}
                 for kn, vn in n.value:
@@ -189,20 +298,23 @@ def read_yaml(text, file="<scenario>"):
                                          "give each key once."))
                         continue
                     lines[kpath] = kn.start_mark.line + 1
-                    out[key] = walk(vn, kpath)
+                    out[key] = walk(vn, kpath, via_alias)
                 return out
             if isinstance(n, yaml.SequenceNode):
                 out = []
                 for i, vn in enumerate(n.value):
                     lines[path + (i,)] = vn.start_mark.line + 1
-                    out.append(walk(vn, path + (i,)))
+                    out.append(walk(vn, path + (i,), via_alias))
                 return out
             value = loader.construct_object(n, deep=True)
             if isinstance(value, str) and n.style is None and _EXP_FLOAT.match(value.strip()):
                 value = float(value)
             return value
 
-        data = walk(node, ())
+        try:
+            data = walk(node, ())
+        except _TooBig as exc:
+            raise too_big(exc.line, exc.message) from None
     finally:
         loader.dispose()
     if problems:
@@ -479,6 +591,8 @@ class Scenario:
         SHA-256 of the source text (or of the normalised YAML when built in code).
     config : dict
         The normalised SI form of the file (what :func:`dump_scenario` writes).
+    input_files : list of str
+        Other files the scenario reads (a calibrated actuator's file), resolved.
     """
 
     name: str
@@ -500,6 +614,7 @@ class Scenario:
     digest: str = ""
     config: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
+    input_files: list = field(default_factory=list)
 
     @property
     def medium(self):
@@ -532,10 +647,13 @@ class Scenario:
 class _Ctx:
     """Collects problems while a document is read; every reader returns BAD on failure."""
 
-    def __init__(self, doc):
+    def __init__(self, doc, opts=None):
         self.doc = doc
         self.problems = []
         self.warnings = []
+        # allow_modules, on_import, check_only (see load_scenario); input_files collects paths read
+        self.opts = dict(opts or {})
+        self.input_files = []
 
     def err(self, path, message, line=None):
         self.problems.append((self.doc.file, line if line is not None else self.doc.line(path),
@@ -837,6 +955,9 @@ def _bodies(ctx, kinds):
         v = _read_keys(ctx, p, spec, "bodies[]")
         if v["count"] is not BAD and v["count"] is not None and v["count"] < 1:
             v["count"] = ctx.err(p + ("count",), f"must be a whole number >= 1, found {spec['count']!r}.")
+        elif isinstance(v["count"], int) and v["count"] > MAX_BODIES:
+            v["count"] = ctx.err(p + ("count",), f"at most {MAX_BODIES} bodies fit in one scenario "
+                                                 f"(fieldplan.scenario.MAX_BODIES), found {spec['count']!r}.")
         for key in ("radius", "density", "height", "saturation_magnetization"):
             if isinstance(v.get(key), float) and not v[key] > 0:
                 v[key] = ctx.err(p + (key,), f"must be > 0, found {spec[key]!r}.")
@@ -874,7 +995,32 @@ def _bodies(ctx, kinds):
             ok = False
             continue
         out.append((body, int(v["count"]), i))
+    total = sum(c for _, c, _ in out)
+    if ok and total > MAX_BODIES:
+        return ctx.err(path, f"the counts add up to {total} bodies; at most {MAX_BODIES} fit in one scenario "
+                             "(fieldplan.scenario.MAX_BODIES).")
     return out if ok else BAD
+
+
+def _declared_count(kinds):
+    """Sum of the ``count`` keys of a raw ``bodies`` list (default 1 each), or None if one is not a number."""
+    if not isinstance(kinds, list):
+        return None
+    total = 0
+    for spec in kinds:
+        c = spec.get("count", 1) if isinstance(spec, dict) else None
+        if isinstance(c, bool) or not isinstance(c, int):
+            return None
+        total += c
+    return total
+
+
+def _check_position_count(ctx, section, spec, n):
+    """Report explicit positions whose number differs from ``n`` (without building any body)."""
+    pts = spec if isinstance(spec, list) else spec.get("positions") if isinstance(spec, dict) else None
+    if isinstance(pts, list) and len(pts) != n:
+        path = (section,) if isinstance(spec, list) else (section, "positions")
+        ctx.err(path, f"expected {n} positions (one per body, as the bodies' counts add up to), found {len(pts)}.")
 
 
 def _placements(ctx, section, spec, bodies, workspace):
@@ -1186,7 +1332,7 @@ def _registry_name(cls):
 def _actuator(ctx, path, spec, base=None):
     """Build an actuator from its section; ``base`` is the parent section for inheritance."""
     from .actuator import Actuator  # noqa: PLC0415
-    from .registry import available_actuators, load_actuator_class  # noqa: PLC0415
+    from .registry import available_actuators, is_registered_module, load_actuator_class  # noqa: PLC0415
 
     if not isinstance(spec, dict):
         return ctx.err(path, f"expected a mapping with 'type' and the actuator's parameters, found "
@@ -1203,8 +1349,15 @@ def _actuator(ctx, path, spec, base=None):
     tname, tpath = merged.get("type", (None, path))
     if not isinstance(tname, str) or not tname:
         return ctx.err(tpath, f"expected an actuator name, found {_type_name(tname)}."), None
+    if ctx.opts.get("check_only") and ":" in tname and tname not in available_actuators() and \
+            not is_registered_module(tname.partition(":")[0]):
+        # Checking a file must never run code from it: leave this section unchecked.
+        ctx.warn(tpath, f"actuator {tname!r} is not a registered plug-in; its module is not imported while "
+                        "checking, so its parameters, channels and limits are not checked.")
+        return NOT_IMPORTED, {k: _si_params(_Ctx(ctx.doc), kp, v) for k, (v, kp) in merged.items()}
     try:
-        cls = load_actuator_class(tname)
+        cls = load_actuator_class(tname, allow_modules=tuple(ctx.opts.get("allow_modules") or ()),
+                                  on_import=ctx.opts.get("on_import"))
     except FieldplanError as exc:
         return ctx.err(tpath, str(exc)), None
     params = {k: vp for k, vp in merged.items() if k != "type"}
@@ -1229,6 +1382,7 @@ def _actuator(ctx, path, spec, base=None):
     for k, v in kw.items():
         if _is_path_param(k, info.get(k)) and isinstance(v, str):
             kw[k] = _resolve_path(ctx.doc.file, v)
+            ctx.input_files.append(kw[k])
     try:
         act = factory(kw) if factory is not None else cls(**kw)
     except Exception as exc:  # noqa: BLE001 - any failure of a plug-in's constructor is the user's input
@@ -1419,8 +1573,8 @@ def _outputs(ctx, spec):
     if isinstance(v["animation_frames"], int) and not 2 <= v["animation_frames"] <= 2000:
         v["animation_frames"] = ctx.err(path + ("animation_frames",), f"must be between 2 and 2000, found "
                                                                       f"{spec['animation_frames']!r}.")
-    if isinstance(v["dpi"], int) and v["dpi"] < 20:
-        v["dpi"] = ctx.err(path + ("dpi",), f"must be >= 20, found {spec['dpi']!r}.")
+    if isinstance(v["dpi"], int) and not 20 <= v["dpi"] <= MAX_DPI:
+        v["dpi"] = ctx.err(path + ("dpi",), f"must be between 20 and {MAX_DPI}, found {spec['dpi']!r}.")
     if any(x is BAD for x in v.values()):
         return BAD
     return OutputSettings(**v)
@@ -1457,6 +1611,12 @@ def _build_sections(ctx, data, name):
     bodies = BAD
     if kinds is not BAD:
         bodies = [b for b, count, _ in kinds for _ in range(count)]
+    elif "bodies" in data:
+        n = _declared_count(data["bodies"])
+        if n is not None and n >= 1:
+            for section in ("starts", "goals"):
+                if section in data:
+                    _check_position_count(ctx, section, data[section], n)
     starts = goals = BAD
     if bodies is not BAD:
         starts = _placements(ctx, "starts", data["starts"], bodies, workspace) if "starts" in data else BAD
@@ -1475,17 +1635,24 @@ def _build_sections(ctx, data, name):
         apath = data.get("__paths__", {}).get("actuator", ("actuator",))
         base_spec = aspec if aspec is not None else data["actuator"]
         truth, tspec = _actuator(ctx, tpath, data["truth"], (base_spec, apath) if isinstance(base_spec, dict) else None)
-        if truth is not BAD and actuator is not BAD:
+        if all(a is not BAD and a is not NOT_IMPORTED for a in (truth, actuator)):
             if [c.name for c in truth.channels] != [c.name for c in actuator.channels]:
                 ctx.err(tpath, f"the truth actuator's channels {[c.name for c in truth.channels]} differ from the "
                                f"planning actuator's {[c.name for c in actuator.channels]}; a schedule planned on "
                                "one cannot be played on the other.")
                 truth = BAD
-    limits = _limits(ctx, data.get("limits"), actuator)
+    unchecked = actuator is NOT_IMPORTED or truth is NOT_IMPORTED
+    if unchecked:
+        # Without the actuator its channels are unknown: limits and body checks wait for `run`.
+        limits = None
+        actuator = None if actuator is NOT_IMPORTED else actuator
+        truth = None if truth is NOT_IMPORTED else truth
+    else:
+        limits = _limits(ctx, data.get("limits"), actuator)
     planner, mode = _planner(ctx, data.get("planner"))
     simulation = _simulation(ctx, data.get("simulation"))
     outputs = _outputs(ctx, data.get("outputs"))
-    if actuator is not BAD and kinds is not BAD and medium is not BAD:
+    if actuator is not BAD and actuator is not None and kinds is not BAD and medium is not BAD:
         for body, _, i in kinds:
             for act, label in ((actuator, "actuator"), (truth, "truth")):
                 if act is None or act is BAD:
@@ -1494,7 +1661,8 @@ def _build_sections(ctx, data, name):
                     act.check_body(body, medium)
                 except FieldplanError as exc:
                     ctx.err(("bodies", i), f"the {label} cannot move kind {body.name!r}: {exc}")
-    if actuator is not BAD and workspace is not BAD and getattr(actuator, "extent", None) and starts is not BAD:
+    if actuator is not BAD and actuator is not None and workspace is not BAD and getattr(actuator, "extent", None) and \
+            starts is not BAD:
         x0, x1, y0, y1 = actuator.extent
         wx0, wy0, wx1, wy1 = workspace.bounds
         if wx0 < x0 - 1e-12 or wx1 > x1 + 1e-12 or wy0 < y0 - 1e-12 or wy1 > y1 + 1e-12:
@@ -1509,18 +1677,22 @@ def _build_sections(ctx, data, name):
                     goals=np.asarray(goals, float), actuator=actuator, truth=truth, limits=limits,
                     assign_goals=bool(unlabelled), planner=planner, mode=mode, simulation=simulation,
                     outputs=outputs, description=str(data.get("description") or ""),
-                    config={"actuator": aspec, "truth": tspec})
+                    config={"actuator": aspec, "truth": tspec,
+                            **({"limits": data.get("limits")} if unchecked and data.get("limits") else {})})
 
 
-def parse_scenario(doc, name=None):
+def parse_scenario(doc, name=None, *, allow_modules=(), on_import=None, check_only=False, progress=False):
     """Validate a :class:`YamlDoc` and build its :class:`Scenario` (and variants).
+
+    Keyword arguments as in :func:`load_scenario`.
 
     Raises
     ------
     ScenarioError
         Listing every problem found.
     """
-    ctx = _Ctx(doc)
+    ctx = _Ctx(doc, {"allow_modules": tuple(allow_modules or ()), "on_import": on_import,
+                     "check_only": bool(check_only), "progress": bool(progress)})
     data = doc.data
     if data is None:
         raise ScenarioError([(doc.file, 1, "(document)", "the file is empty; a scenario needs at least "
@@ -1584,11 +1756,12 @@ def parse_scenario(doc, name=None):
     if ctx.problems:
         raise ScenarioError(ctx.problems)
     sc.variants = variants
+    sc.input_files = list(dict.fromkeys(ctx.input_files))
     sc.source = doc.file
     sc.digest = hashlib.sha256(doc.text.encode()).hexdigest()
     sc.warnings = ctx.warnings
     for v in variants:
-        v.source, v.digest = doc.file, sc.digest
+        v.source, v.digest, v.input_files = doc.file, sc.digest, sc.input_files
         v.simulation, v.outputs = sc.simulation, sc.outputs
     return sc
 
@@ -1599,6 +1772,8 @@ class _SubCtx(_Ctx):
     def __init__(self, parent, vpath, variant):
         self.parent = parent
         self.doc = parent.doc
+        self.opts = parent.opts
+        self.input_files = parent.input_files
         self.vpath = vpath
         self.sections = set(variant)
 
@@ -1628,7 +1803,8 @@ class _SubCtx(_Ctx):
                                                                  key_string(p), message))
 
 
-def load_scenario(path_or_text, *, name=None):
+def load_scenario(path_or_text, *, name=None, allow_modules=(), on_import=None, check_only=False,
+                  progress=False):
     """Read, validate and build a scenario.
 
     Parameters
@@ -1637,6 +1813,18 @@ def load_scenario(path_or_text, *, name=None):
         A scenario file, or YAML text (anything containing a newline is taken as text).
     name : str, optional
         Label when the file has no ``name``.
+    allow_modules : sequence of str
+        Modules an actuator ``type: module:Class`` may import although they are not registered
+        plug-ins (importing runs their code); the user's configuration may allow more
+        (:func:`fieldplan.registry.user_allowed_modules`).
+    on_import : callable, optional
+        ``on_import(module, file, reason)``, called before such a module is imported.
+    check_only : bool
+        Never import a module that is not a registered plug-in: such an actuator section (and the
+        limits, which need its channels) is left unchecked with a warning, and the scenario's
+        ``actuator`` is ``None``. What ``fieldplan validate`` uses.
+    progress : bool
+        Show a progress bar while a long obstacle list is read.
 
     Returns
     -------
@@ -1665,13 +1853,18 @@ def load_scenario(path_or_text, *, name=None):
         file = os.fspath(path_or_text)
         try:
             with open(file, encoding="utf-8") as fh:
-                text = fh.read()
+                text = fh.read(MAX_FILE_CHARS + 1)
+            if len(text) > MAX_FILE_CHARS:
+                raise ScenarioError([(file, None, "(file)", f"the file is larger than {MAX_FILE_CHARS} characters "
+                                                            "(fieldplan.scenario.MAX_FILE_CHARS); a scenario file "
+                                                            "this large is refused.")])
         except FileNotFoundError:
             raise ScenarioError([(file, None, "(file)", "no such file.")]) from None
         except (OSError, UnicodeDecodeError) as exc:
             raise ScenarioError([(file, None, "(file)", f"cannot read the file ({exc}).")]) from None
     doc = read_yaml(text, file)
-    return parse_scenario(doc, name=name)
+    return parse_scenario(doc, name=name, allow_modules=allow_modules, on_import=on_import, check_only=check_only,
+                          progress=progress)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1793,6 +1986,8 @@ def scenario_to_dict(sc):
         if chans:
             d["channels"] = chans
         out["limits"] = d
+    elif sc.config.get("limits"):
+        out["limits"] = _plain(sc.config["limits"])     # actuator not imported: limits as given, unchecked
     out["planner"] = dict(mode=sc.mode, **_plain(sc.planner))
     out["simulation"] = _plain(dataclasses.asdict(sc.simulation))
     o = dataclasses.asdict(sc.outputs)

@@ -34,7 +34,10 @@ def scenario_text(n_sources=3, limits="", size_mm=1.0, trials=0):
 
 
 def listing(folder):
-    return sorted(os.listdir(folder))
+    """Files of a folder, without fieldplan's marker file."""
+    from fieldplan.export import MARKER
+
+    return sorted(n for n in os.listdir(folder) if n != MARKER)
 
 
 def test_limit_violation_is_refused_before_anything_is_written(tmp_path):
@@ -84,17 +87,21 @@ def test_failure_while_writing_leaves_no_partial_folder(tmp_path, monkeypatch):
     with pytest.raises(RuntimeError):
         write_outputs(tmp_path / "out", run)
     assert listing(tmp_path) == []
-    # an existing folder survives a failed --force rewrite untouched
-    (tmp_path / "out").mkdir()
-    (tmp_path / "out" / "keep.txt").write_text("previous run")
+    # an earlier output folder survives a failed --force rewrite untouched
+    monkeypatch.undo()
+    write_outputs(tmp_path / "out", run)
+    (tmp_path / "out" / "summary.json").write_text("previous run")
+    before = listing(tmp_path / "out")
+    monkeypatch.setattr(export, "write_trajectories", boom)
     with pytest.raises(RuntimeError):
         write_outputs(tmp_path / "out", run, force=True)
-    assert listing(tmp_path) == ["out"] and listing(tmp_path / "out") == ["keep.txt"]
+    assert listing(tmp_path) == ["out"] and listing(tmp_path / "out") == before
+    assert (tmp_path / "out" / "summary.json").read_text() == "previous run"
     with pytest.raises(OutputExistsError):
         write_outputs(tmp_path / "out", run)
     monkeypatch.undo()
     files = write_outputs(tmp_path / "out", run, force=True)
-    assert "keep.txt" not in listing(tmp_path / "out") and os.path.exists(files["summary"])
+    assert json.loads(open(files["summary"]).read())["format"] == "fieldplan-summary"
 
 
 # --------------------------------------------------------------------------------------------
