@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import functools
 import hashlib
 import inspect
 import math
@@ -24,6 +25,7 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+import shapely
 import yaml
 
 from .errors import FieldplanError, ScenarioError, UnitError
@@ -67,13 +69,17 @@ NOT_IMPORTED = _NotImported()
 
 #: Resource limits on a scenario file, so that no file can make reading it use unbounded memory or
 #: time (each is documented in the README; a file beyond one is refused with the line concerned).
-MAX_FILE_CHARS = 50_000_000     # size of the file, characters
+MAX_FILE_CHARS = 16_000_000     # size of the file, characters
 MAX_DEPTH = 64                  # nesting depth of lists and mappings (after alias expansion)
-MAX_NODES = 2_000_000           # YAML values (scalars, lists, mappings), aliases expanded
+MAX_NODES = 500_000             # YAML values (scalars, lists, mappings), aliases expanded
 MAX_ALIAS_NODES = 100_000       # values reached through aliases (``*name``), in total
 MAX_BODIES = 1_000              # bodies in one scenario (sum of the counts)
-MAX_OBSTACLES = 100_000         # obstacles in one workspace
+MAX_OBSTACLES = 50_000          # obstacles in one workspace
+MAX_OBSTACLE_VERTICES = 3_000_000   # polygon vertices of all obstacles (a circle is 129)
 MAX_DPI = 1200                  # outputs.dpi
+
+_PROGRESS_OBSTACLES = 2_000     # show a progress bar (on a terminal) from this many obstacles
+_MAX_REPEATED_WARNINGS = 10     # one warning each for this many, then one summary
 
 
 class _TooBig(Exception):
@@ -132,6 +138,61 @@ if _CParser is not None:
             yaml.constructor.SafeConstructor.__init__(self)
             yaml.resolver.Resolver.__init__(self)
             self._init_bounds(max_depth, max_nodes)
+
+
+def _prescan(text, max_depth, max_nodes, max_alias):
+    """Check the size limits on the parser's event stream, before any node is built.
+
+    Every collection's expanded size (values inside it, aliases counted at the size of their anchor)
+    and height are tracked in one pass, so an alias bomb or a huge or deeply nested file is refused
+    in about a second (libyaml parses; only counters are kept). Malformed YAML is left to the reader.
+    """
+    parser = _CParser(text)
+    stack = []                 # per open collection: [size, height, anchor]
+    anchors = {}               # anchor -> (size, height)
+    nodes = alias = 0
+
+    def close(size, height, anchor, mark, own):
+        nonlocal nodes
+        if anchor is not None:
+            anchors[anchor] = (size, height)
+        if stack:
+            stack[-1][0] += size
+            stack[-1][1] = max(stack[-1][1], height + 1)
+            if len(stack) + height > max_depth:
+                raise _TooBig(mark.line + 1, f"lists and mappings are nested more than {max_depth} deep once "
+                                             "aliases are expanded (fieldplan.scenario.MAX_DEPTH).")
+        nodes += own
+        if nodes > max_nodes:
+            raise _TooBig(mark.line + 1, f"the file expands to more than {max_nodes} values "
+                                         "(fieldplan.scenario.MAX_NODES).")
+
+    try:
+        while True:
+            ev = parser.get_event()
+            if ev is None or isinstance(ev, yaml.StreamEndEvent):
+                break
+            if isinstance(ev, (yaml.SequenceStartEvent, yaml.MappingStartEvent)):
+                if len(stack) >= max_depth:
+                    raise _TooBig(ev.start_mark.line + 1, f"lists and mappings are nested more than {max_depth} "
+                                                          "deep (fieldplan.scenario.MAX_DEPTH).")
+                stack.append([1, 0, ev.anchor])
+            elif isinstance(ev, (yaml.SequenceEndEvent, yaml.MappingEndEvent)):
+                size, height, anchor = stack.pop()
+                close(size, max(height, 1), anchor, ev.start_mark, 1)
+            elif isinstance(ev, yaml.ScalarEvent):
+                close(1, 0, ev.anchor, ev.start_mark, 1)
+            elif isinstance(ev, yaml.AliasEvent):
+                size, height = anchors.get(ev.anchor, (1, 0))
+                alias += size
+                if alias > max_alias:
+                    raise _TooBig(ev.start_mark.line + 1, f"aliases (*name) expand to more than {max_alias} "
+                                                          "values (fieldplan.scenario.MAX_ALIAS_NODES).")
+                close(size, height, None, ev.start_mark, size)
+    except yaml.YAMLError:
+        return                 # the reader reports malformed YAML with its own message
+    finally:
+        parser.dispose()
 
 
 def _merged_size(node, memo):
@@ -246,6 +307,7 @@ def read_yaml(text, file="<scenario>"):
     if _CParser is not None:
         loader = _FastBoundedLoader(text, max_depth, max_nodes)
         try:
+            _prescan(text, max_depth, max_nodes, max_alias)
             node = loader.get_single_node()
         except yaml.YAMLError:
             # Re-read with the pure-Python parser: its messages and marks are the ones users see.
@@ -735,13 +797,26 @@ def _check_keys(ctx, path, mapping, schema_name, extra_allowed=()):
     return True
 
 
+@functools.lru_cache(maxsize=4096)
+def _to_si_text(value, unit):
+    # Parsing a unit string costs pint tens of microseconds; long obstacle lists repeat the same ones.
+    return to_si(value, unit)
+
+
 def _quantity(ctx, path, value, unit, *, positive=False, nonnegative=False):
     if value is None:
         return ctx.err(path, f"expected a quantity in {unit}, found nothing (null).")
     try:
-        v = to_si(value, unit, name=str(path[-1]) if path else "value")
-    except UnitError as exc:
-        return ctx.err(path, str(exc))
+        if isinstance(value, str):
+            v = _to_si_text(value, unit)
+        else:
+            v = to_si(value, unit, name=str(path[-1]) if path else "value")
+    except UnitError:
+        try:
+            to_si(value, unit, name=str(path[-1]) if path else "value")     # again, for the message with the key
+        except UnitError as exc:
+            return ctx.err(path, str(exc))
+        raise
     if positive and not v > 0:
         return ctx.err(path, f"must be > 0 {unit}, found {value!r}.")
     if nonnegative and not v >= 0:
@@ -859,10 +934,12 @@ def _read_keys(ctx, path, mapping, schema_name):
 # Sections
 # ----------------------------------------------------------------------------------------------
 
-def _shape(ctx, path, value):
-    """A shapely polygon from a shape mapping."""
-    from .workspace import circle, polygon, rectangle  # noqa: PLC0415
+def _shape_spec(ctx, path, value):
+    """Validated parameters of a shape mapping, not yet a geometry.
 
+    Returns ``("rectangle", (xmin, ymin, xmax, ymax))``, ``("circle", (cx, cy, r))`` or
+    ``("polygon", points)`` in m, or BAD (the problem recorded).
+    """
     kinds = ("rectangle", "circle", "polygon")
     if not isinstance(value, dict) or len(value) != 1:
         found = _type_name(value) if not isinstance(value, dict) else f"keys {list(value)}"
@@ -874,43 +951,74 @@ def _shape(ctx, path, value):
         close = difflib.get_close_matches(kind, kinds, n=1)
         hint = f" Did you mean {close[0]!r}?" if close else f" Allowed: {', '.join(kinds)}."
         return ctx.err(p, f"unknown shape {kind!r}.{hint}")
-    try:
-        if kind == "rectangle":
-            if isinstance(spec, dict):
-                bad = set(spec) - {"center", "size"}
-                if bad or set(spec) != {"center", "size"}:
-                    return ctx.err(p, f"rectangle mapping needs exactly keys 'center' and 'size', found "
-                                      f"{sorted(spec)}.")
-                c = _point(ctx, p + ("center",), spec["center"])
-                s = _point(ctx, p + ("size",), spec["size"])
-                if c is BAD or s is BAD:
-                    return BAD
-                if not (s[0] > 0 and s[1] > 0):
-                    return ctx.err(p + ("size",), f"rectangle size must be > 0 m, found {spec['size']!r}.")
-                return rectangle(c[0] - s[0] / 2, c[1] - s[1] / 2, c[0] + s[0] / 2, c[1] + s[1] / 2)
-            if not isinstance(spec, list) or len(spec) != 4:
-                return ctx.err(p, f"expected [xmin, ymin, xmax, ymax] in m, found {_type_name(spec)}.")
-            v = [_quantity(ctx, p + (i,), s, "m") for i, s in enumerate(spec)]
-            if any(x is BAD for x in v):
-                return BAD
-            if not (v[2] > v[0] and v[3] > v[1]):
-                return ctx.err(p, f"rectangle needs xmax > xmin and ymax > ymin, found {spec!r}.")
-            return rectangle(*v)
-        if kind == "circle":
-            if not isinstance(spec, dict) or set(spec) != {"center", "radius"}:
-                found = sorted(spec) if isinstance(spec, dict) else _type_name(spec)
-                return ctx.err(p, f"circle needs exactly keys 'center' and 'radius', found {found}.")
+    if kind == "rectangle":
+        if isinstance(spec, dict):
+            if set(spec) != {"center", "size"}:
+                return ctx.err(p, f"rectangle mapping needs exactly keys 'center' and 'size', found "
+                                  f"{sorted(spec)}.")
             c = _point(ctx, p + ("center",), spec["center"])
-            r = _quantity(ctx, p + ("radius",), spec["radius"], "m", positive=True)
-            if c is BAD or r is BAD:
+            sz = _point(ctx, p + ("size",), spec["size"])
+            if c is BAD or sz is BAD:
                 return BAD
-            return circle(c, r)
-        pts = _points(ctx, p, spec, minimum=3)
-        if pts is BAD:
+            if not (sz[0] > 0 and sz[1] > 0):
+                return ctx.err(p + ("size",), f"rectangle size must be > 0 m, found {spec['size']!r}.")
+            return ("rectangle", (c[0] - sz[0] / 2, c[1] - sz[1] / 2, c[0] + sz[0] / 2, c[1] + sz[1] / 2))
+        if not isinstance(spec, list) or len(spec) != 4:
+            return ctx.err(p, f"expected [xmin, ymin, xmax, ymax] in m, found {_type_name(spec)}.")
+        v = [_quantity(ctx, p + (i,), x, "m") for i, x in enumerate(spec)]
+        if any(x is BAD for x in v):
             return BAD
-        return polygon(pts)
-    except FieldplanError as exc:
-        return ctx.err(p, str(exc))
+        if not (v[2] > v[0] and v[3] > v[1]):
+            return ctx.err(p, f"rectangle needs xmax > xmin and ymax > ymin, found {spec!r}.")
+        return ("rectangle", tuple(v))
+    if kind == "circle":
+        if not isinstance(spec, dict) or set(spec) != {"center", "radius"}:
+            found = sorted(spec) if isinstance(spec, dict) else _type_name(spec)
+            return ctx.err(p, f"circle needs exactly keys 'center' and 'radius', found {found}.")
+        c = _point(ctx, p + ("center",), spec["center"])
+        r = _quantity(ctx, p + ("radius",), spec["radius"], "m", positive=True)
+        if c is BAD or r is BAD:
+            return BAD
+        return ("circle", (c[0], c[1], r))
+    pts = _points(ctx, p, spec, minimum=3)
+    if pts is BAD:
+        return BAD
+    return ("polygon", pts)
+
+
+def _build_shapes(ctx, paths, specs):
+    """Shapely polygons of many shape specs (from :func:`_shape_spec`) at once; BAD where one fails.
+
+    Rectangles and circles are made with one vectorised shapely call each, so a workspace with
+    tens of thousands of obstacles is built in well under a second.
+    """
+    from .workspace import CIRCLE_RESOLUTION, polygon  # noqa: PLC0415
+
+    out = np.empty(len(specs), dtype=object)
+    kinds = np.array([k for k, _ in specs] if specs else [], dtype=object)
+    for kind in ("rectangle", "circle"):
+        idx = np.flatnonzero(kinds == kind)
+        if len(idx) == 0:
+            continue
+        v = np.array([specs[i][1] for i in idx], dtype=float)
+        if kind == "rectangle":
+            out[idx] = shapely.box(v[:, 0], v[:, 1], v[:, 2], v[:, 3])
+        else:
+            out[idx] = shapely.buffer(shapely.points(v[:, :2]), v[:, 2], quad_segs=CIRCLE_RESOLUTION)
+    for i in np.flatnonzero(kinds == "polygon"):
+        try:
+            out[i] = polygon(specs[i][1])
+        except FieldplanError as exc:
+            out[i] = ctx.err(paths[i] + ("polygon",), str(exc))
+    return out
+
+
+def _shape(ctx, path, value):
+    """A shapely polygon from a shape mapping."""
+    spec = _shape_spec(ctx, path, value)
+    if spec is BAD:
+        return BAD
+    return _build_shapes(ctx, [path], [spec])[0]
 
 
 def _workspace(ctx, ws, medium):
@@ -920,25 +1028,46 @@ def _workspace(ctx, ws, medium):
     if not _check_keys(ctx, path, ws, "workspace"):
         return BAD
     boundary = _shape(ctx, path + ("boundary",), ws["boundary"]) if "boundary" in ws else BAD
-    obstacles = []
     obs = ws.get("obstacles") or []
     if not isinstance(obs, list):
         ctx.err(path + ("obstacles",), f"expected a list of shapes, found {_type_name(obs)}.")
         obs = []
-    for i, o in enumerate(obs):
-        g = _shape(ctx, path + ("obstacles", i), o)
-        if g is not BAD:
-            if boundary is not BAD and not g.intersects(boundary):
-                ctx.warn(path + ("obstacles", i), "obstacle lies wholly outside the boundary.")
-            obstacles.append(g)
-        else:
-            obstacles.append(BAD)
-    if boundary is BAD or any(o is BAD for o in obstacles) or medium is BAD:
+    if len(obs) > MAX_OBSTACLES:
+        return ctx.err(path + ("obstacles",), f"{len(obs)} obstacles given; at most {MAX_OBSTACLES} fit in one "
+                                              "workspace (fieldplan.scenario.MAX_OBSTACLES). Merge small ones "
+                                              "into larger polygons.")
+    items = enumerate(obs)
+    if ctx.opts.get("progress") and len(obs) >= _PROGRESS_OBSTACLES:
+        from tqdm.auto import tqdm  # noqa: PLC0415
+
+        items = tqdm(items, total=len(obs), desc="reading obstacles", unit="obstacle", leave=False)
+    paths = [path + ("obstacles", i) for i in range(len(obs))]
+    specs = [_shape_spec(ctx, paths[i], o) for i, o in items]
+    if any(sp is BAD for sp in specs) or boundary is BAD or medium is BAD:
         return BAD
+    from .workspace import CIRCLE_RESOLUTION  # noqa: PLC0415
+
+    vertices = sum(5 if k == "rectangle" else 4 * CIRCLE_RESOLUTION + 1 if k == "circle" else len(v) + 1
+                   for k, v in specs)
+    if vertices > MAX_OBSTACLE_VERTICES:
+        return ctx.err(path + ("obstacles",), f"the obstacles have {vertices} polygon vertices in all (a circle has "
+                                              f"{4 * CIRCLE_RESOLUTION + 1}); at most {MAX_OBSTACLE_VERTICES} are "
+                                              "allowed (fieldplan.scenario.MAX_OBSTACLE_VERTICES), so that the free "
+                                              "space fits in memory. Use fewer or simpler obstacles.")
+    obstacles = _build_shapes(ctx, paths, specs)
+    if any(o is BAD for o in obstacles):
+        return BAD
+    if len(obstacles):
+        outside = np.flatnonzero(~shapely.intersects(boundary, obstacles))
+        for i in outside[:_MAX_REPEATED_WARNINGS]:
+            ctx.warn(paths[i], "obstacle lies wholly outside the boundary.")
+        if len(outside) > _MAX_REPEATED_WARNINGS:
+            ctx.warn(path + ("obstacles",), f"{len(outside) - _MAX_REPEATED_WARNINGS} more obstacles lie wholly "
+                                            "outside the boundary.")
     try:
-        return Workspace(boundary, obstacles, medium)
+        return Workspace(boundary, list(obstacles), medium)
     except FieldplanError as exc:
-        return ctx.err(path + (("obstacles",) if obstacles else ("boundary",)), str(exc))
+        return ctx.err(path + (("obstacles",) if len(obstacles) else ("boundary",)), str(exc))
 
 
 def _medium(ctx, m):
@@ -1125,8 +1254,7 @@ def _pt(xy):
 
 
 def _in_obstacle(workspace, xy):
-    p = _pt(xy)
-    return any(o.contains(p) for o in workspace.obstacles)
+    return len(workspace.obstacle_index.query(_pt(xy), predicate="within")) > 0
 
 
 def _no_overlap(ctx, path, pts, bodies, section):
