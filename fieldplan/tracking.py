@@ -458,6 +458,9 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True, skip_
     hline, hcells = rows[0]
     header = _parse_header(hcells, path, hline)
     body = rows[1:]
+    if not body and bad:
+        raise TrackingDataError(f"every data row is unreadable (first: line {bad[0][0]}, {bad[0][1]}).",
+                                path=path, line=bad[0][0])
     if not body:
         raise TrackingDataError("the file has a header but no data rows.", path=path, line=hline)
     names = [n for n, _ in header]
