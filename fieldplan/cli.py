@@ -2,8 +2,8 @@
 
 Exit codes: 0 success; 1 planned (or replayed) but some goal was not reached; 2 bad input (the
 message names file, line and key, or channel, time and limit; no traceback); 3 internal error (a
-bug: the traceback is printed). ``fieldplan <subcommand> --help`` shows each subcommand with an
-example.
+bug: the traceback is printed); 130 interrupted (Ctrl-C), 143 terminated (SIGTERM; 129 for SIGHUP),
+leaving no partial output. ``fieldplan <subcommand> --help`` shows each subcommand with an example.
 """
 
 from __future__ import annotations
