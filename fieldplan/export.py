@@ -504,7 +504,7 @@ def write_outputs(out_dir, run, *, force=False, outputs=None, inputs=None):
                 role = next(k for k, v in FILES.items() if v == os.path.basename(p))
                 files[role] = p
             summary["files"] = sorted(FILES[k] for k in files)
-        summary["files"].append(FILES["summary"])
+        summary["files"] += [FILES["summary"], MARKER]
         files["summary"] = os.path.join(tmp, FILES["summary"])
         atomic_write(files["summary"], json.dumps(summary, indent=1, allow_nan=False))
     return {k: os.path.join(out, os.path.basename(v)) for k, v in files.items()}

@@ -155,9 +155,8 @@ def test_end_to_end_outputs_exist_parse_and_agree(base_run):
     assert "Traceback" not in proc.stderr
     assert str(out) in proc.stdout                  # says where the outputs are
     summary = json.loads((out / "summary.json").read_text())
-    from fieldplan.export import MARKER
-
-    assert sorted(os.listdir(out)) == sorted(summary["files"] + [MARKER])   # the marker: fieldplan wrote it
+    assert sorted(os.listdir(out)) == sorted(summary["files"])
+    assert ".fieldplan-output" in summary["files"]            # the marker: fieldplan wrote this folder
     for f in ("schedule.csv", "schedule.json", "schedule_resampled.csv", "trajectories.csv", "inputs.png"):
         assert (out / f).stat().st_size > 0
     assert proc.returncode == summary["exit_code"]

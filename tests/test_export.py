@@ -34,10 +34,7 @@ def scenario_text(n_sources=3, limits="", size_mm=1.0, trials=0):
 
 
 def listing(folder):
-    """Files of a folder, without fieldplan's marker file."""
-    from fieldplan.export import MARKER
-
-    return sorted(n for n in os.listdir(folder) if n != MARKER)
+    return sorted(os.listdir(folder))
 
 
 def test_limit_violation_is_refused_before_anything_is_written(tmp_path):
