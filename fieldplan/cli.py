@@ -301,6 +301,8 @@ def _read_schedule(path, sc):
 
     if not os.path.exists(path):
         raise _UserError(f"{path}: no such schedule file.")
+    if not os.path.isfile(path):
+        raise _UserError(f"{path}: not a regular file (a folder, device or pipe cannot be a schedule).")
     try:
         if path.lower().endswith(".json"):
             return Schedule.read_json(path)
@@ -547,8 +549,8 @@ def _cmd_fit(args):
 
     if not os.path.exists(args.tracks):
         raise _UserError(f"{args.tracks}: no such tracking file.")
-    if os.path.isdir(args.tracks):
-        raise _UserError(f"{args.tracks}: is a folder, not a tracking CSV file.")
+    if not os.path.isfile(args.tracks):
+        raise _UserError(f"{args.tracks}: not a regular file (a folder, device or pipe is not a tracking CSV).")
     _prepare_out(args, args.out, [args.tracks])
     units = None
     if args.units:

@@ -2017,6 +2017,9 @@ def load_scenario(path_or_text, *, name=None, allow_modules=(), on_import=None, 
         text, file = path_or_text, name or "<scenario>"
     else:
         file = os.fspath(path_or_text)
+        if os.path.exists(file) and not os.path.isfile(file):
+            raise ScenarioError([(file, None, "(file)", "not a regular file (a folder, device or pipe cannot be a "
+                                                        "scenario file).")])
         try:
             with open(file, encoding="utf-8") as fh:
                 text = fh.read(MAX_FILE_CHARS + 1)

@@ -360,8 +360,16 @@ def _read_lines(path, skip, bad):
     quote or an undecodable byte be reported at its own line (or skipped, recording ``(line,
     reason)`` in ``bad``) instead of swallowing the rest of the file.
     """
+    if not os.path.isfile(path):
+        raise TrackingDataError("is not a regular file (a device or a pipe cannot be read as tracking data).",
+                                path=path)
     with open(path, "rb") as fh:
-        blob = fh.read()
+        head = fh.read(65536)
+        if b"\0" in head and not skip:     # refuse a binary file before reading all of it
+            nul = head.find(b"\0")
+            raise TrackingDataError(f"{_BINARY_HINT}; it holds NUL bytes.", path=path,
+                                    line=head.count(b"\n", 0, nul) + 1)
+        blob = head + fh.read()
     if blob.startswith(b"\xef\xbb\xbf"):
         blob = blob[3:]
     nul = blob.find(b"\0")

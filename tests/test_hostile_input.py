@@ -498,6 +498,18 @@ def test_fit_command_malformed_csv_exit_2_and_skip_bad_rows(tmp_path, capsys):
     assert report["actuator"] == str(tmp_path / "o" / "actuator.json")     # final paths, not the temporary ones
 
 
+@pytest.mark.skipif(not os.path.exists("/dev/zero"), reason="needs /dev/zero")
+def test_devices_are_not_read_as_input(tmp_path, capsys):
+    """An endless input (a device or a pipe) is refused, never read until memory runs out."""
+    assert main(["fit", "/dev/zero", "--out", str(tmp_path / "o"), "-q"]) == 2
+    assert main(["validate", "/dev/zero", "-q"]) == 2
+    (tmp_path / "s.yaml").write_text(SCENARIO)
+    assert main(["run", str(tmp_path / "s.yaml"), "--schedule", "/dev/zero", "--out", str(tmp_path / "o"), "-q"]) == 2
+    assert capsys.readouterr().err.count("not a regular file") == 3
+    with pytest.raises(TrackingDataError, match="not a regular file"):
+        read_tracks("/dev/zero")
+
+
 def test_internal_error_text_of_fit_does_not_mention_a_scenario(tmp_path, monkeypatch, capsys):
     import fieldplan.calibrate as calibrate
 
