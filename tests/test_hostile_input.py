@@ -177,6 +177,54 @@ def test_sigterm_while_writing_removes_the_temporary_folder(tmp_path, monkeypatc
     assert signal.getsignal(signal.SIGTERM) == before      # the handler is only ours while the command runs
 
 
+SLOW_WRITER = textwrap.dedent("""\
+    import pathlib, sys, time
+    import fieldplan.export as export
+    from fieldplan.cli import main
+
+    def slow(path, run):          # stands for a long write (an animation, a slow disk)
+        pathlib.Path(sys.argv[1]).write_text("writing")
+        time.sleep(60)
+
+    export.write_trajectories = slow
+    sys.exit(main(sys.argv[2:]))
+    """)
+
+
+@pytest.mark.skipif(os.name != "posix", reason="POSIX signals")
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL], ids=["SIGTERM", "SIGKILL"])
+def test_a_real_process_killed_while_writing(tmp_path, sig, capsys):
+    """The reported case, in a real process: SIGTERM cleans up and says so; after SIGKILL the next run cleans."""
+    script = tmp_path / "slow.py"
+    script.write_text(SLOW_WRITER)
+    ready = tmp_path / "ready"
+    args = _replay_args(tmp_path) + ["--out", str(tmp_path / "out")]
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(ROOT)] + [os.environ.get("PYTHONPATH", "")]),
+               MPLBACKEND="Agg")
+    proc = subprocess.Popen([sys.executable, str(script), str(ready)] + args, stderr=subprocess.PIPE, text=True,
+                            env=env)
+    try:
+        deadline = time.monotonic() + 120
+        while not ready.exists() and proc.poll() is None and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert ready.exists(), proc.stderr.read() if proc.poll() is not None else "writer never started"
+        assert [n for n in os.listdir(tmp_path) if n.startswith(".out.tmp-")]      # it is writing now
+        proc.send_signal(sig)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    left = [n for n in os.listdir(tmp_path) if n.startswith(".out.")]
+    if sig == signal.SIGTERM:
+        assert proc.returncode == 128 + signal.SIGTERM and "terminated (SIGTERM)" in err
+        assert left == [] and not (tmp_path / "out").exists()
+    else:
+        assert proc.returncode == -signal.SIGKILL and len(left) == 1     # nothing can run on SIGKILL ...
+        assert main(args) in (0, 1)                                       # ... so the next run cleans up
+        assert f"removed {left[0]}" in capsys.readouterr().err
+        assert [n for n in os.listdir(tmp_path) if n.startswith(".out.")] == []
+
+
 def test_sigint_still_exits_130(tmp_path, monkeypatch, capsys):
     import fieldplan.export as export
 
