@@ -69,7 +69,7 @@ def build_parser():
     r.add_argument("--out", "-o", default=None, help="output folder (default: <scenario name>-output)")
     r.add_argument("--force", action="store_true", help="replace an output folder fieldplan wrote before (never one holding other files)")
     _allow_module_arg(r)
-    r.add_argument("--trials", type=_nonneg_int, default=None, help="override simulation.trials")
+    r.add_argument("--trials", type=_bounded_int(0, MAX_TRIALS), default=None, help="override simulation.trials")
     r.add_argument("--seed", type=_nonneg_int, default=None, help="override simulation.seed")
     r.add_argument("--schedule", default=None, metavar="CSV_OR_JSON",
                    help="replay this schedule instead of planning (its channels must match the actuator)")
@@ -93,7 +93,8 @@ def build_parser():
     c.add_argument("--force", action="store_true", help="replace an output folder fieldplan wrote before (never one holding other files)")
     _allow_module_arg(c)
     c.add_argument("--seeds", default="3", help="a count N (seeds 0..N-1) or a comma list (default 3)")
-    c.add_argument("--trials", type=_nonneg_int, default=1, help="trials per (variant, seed) (default 1)")
+    c.add_argument("--trials", type=_bounded_int(0, MAX_TRIALS), default=1,
+                   help="trials per (variant, seed) (default 1)")
     c.add_argument("--workers", type=_nonneg_int, default=None,
                    help="local worker processes (default: CPU count; 1: run in this process)")
     c.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -174,6 +175,8 @@ def build_parser():
 
 #: Largest --grid and --trials of ``inspect`` (the speed map solves one LP per grid point).
 MAX_INSPECT_GRID, MAX_INSPECT_TRIALS = 512, 100_000
+#: Largest --trials of ``run`` and ``compare`` (as ``simulation.trials``), and number of --seeds.
+MAX_TRIALS, MAX_SEEDS = 100_000, 100_000
 
 
 def _allow_module_arg(p):
@@ -320,9 +323,14 @@ def _parse_seeds(text):
         if "," in text:
             seeds = [int(s) for s in text.split(",") if s.strip()]
         else:
-            seeds = list(range(int(text)))
+            n = int(text)
+            if n > MAX_SEEDS:           # before building the list
+                raise _UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {n}.")
+            seeds = list(range(n))
     except ValueError:
         raise _UserError(f"--seeds: expected a count or a comma list of whole numbers, got {text!r}.") from None
+    if len(seeds) > MAX_SEEDS:
+        raise _UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {len(seeds)}.")
     if not seeds or any(s < 0 for s in seeds):
         raise _UserError(f"--seeds: need at least one seed >= 0, got {text!r}.")
     return seeds

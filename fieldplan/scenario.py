@@ -77,6 +77,7 @@ MAX_BODIES = 1_000              # bodies in one scenario (sum of the counts)
 MAX_OBSTACLES = 50_000          # obstacles in one workspace
 MAX_OBSTACLE_VERTICES = 3_000_000   # polygon vertices of all obstacles (a circle is 129)
 MAX_DPI = 1200                  # outputs.dpi
+MAX_TRIALS = 100_000            # simulation.trials (every trial's trajectory is kept)
 
 _PROGRESS_OBSTACLES = 2_000     # show a progress bar (on a terminal) from this many obstacles
 _MAX_REPEATED_WARNINGS = 10     # one warning each for this many, then one summary
@@ -1701,10 +1702,10 @@ def _simulation(ctx, spec):
     if not _check_keys(ctx, path, spec, "simulation"):
         return BAD
     v = _read_keys(ctx, path, spec, "simulation")
-    checks = {"trials": lambda x: x >= 0, "seed": lambda x: x >= 0, "tracking_noise": lambda x: x >= 0,
+    checks = {"trials": lambda x: 0 <= x <= MAX_TRIALS, "seed": lambda x: x >= 0, "tracking_noise": lambda x: x >= 0,
               "latency": lambda x: x >= 0, "max_displacement": lambda x: x > 0, "dt_max": lambda x: x > 0,
               "record_interval": lambda x: x > 0, "required_success": lambda x: 0 <= x <= 1}
-    rules = {"trials": ">= 0", "seed": ">= 0", "tracking_noise": ">= 0 m", "latency": ">= 0 s",
+    rules = {"trials": f"from 0 to {MAX_TRIALS} (fieldplan.scenario.MAX_TRIALS)", "seed": ">= 0", "tracking_noise": ">= 0 m", "latency": ">= 0 s",
              "max_displacement": "> 0 m", "dt_max": "> 0 s", "record_interval": "> 0 s",
              "required_success": "between 0 and 1"}
     for k, ok in checks.items():

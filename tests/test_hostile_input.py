@@ -395,6 +395,10 @@ def test_body_count_limit_sums_the_kinds(monkeypatch):
 def test_output_and_inspect_sizes_are_bounded(tmp_path, capsys):
     _, _, key, msg = problems_of(SCENARIO.replace("outputs: {plots: false}", "outputs: {dpi: 100000}"))[0]
     assert key == "outputs.dpi" and "1200" in msg
+    _, _, key, msg = problems_of(SCENARIO.replace("trials: 0", "trials: 1000000000"))[0]
+    assert key == "simulation.trials" and "MAX_TRIALS" in msg
+    assert main(["compare", "x.yaml", "--seeds", "1000000000000", "-q"]) == 2          # no list of 1e12 seeds
+    assert "--seeds" in capsys.readouterr().err
     p = tmp_path / "s.yaml"
     p.write_text(SCENARIO)
     for extra in (["--grid", "100000"], ["--trials", "1000000000"]):
@@ -673,7 +677,7 @@ def test_outputs_follow_the_umask(tmp_path, umask):
 def test_limits_are_documented_in_the_readme():
     readme = (ROOT / "README.md").read_text()
     for name in ("MAX_FILE_CHARS", "MAX_DEPTH", "MAX_NODES", "MAX_ALIAS_NODES", "MAX_BODIES", "MAX_OBSTACLES",
-                 "MAX_OBSTACLE_VERTICES"):
+                 "MAX_OBSTACLE_VERTICES", "MAX_TRIALS"):
         value = getattr(scenario_mod, name)
         assert f"{value:,}" in readme, (name, value)
     for flag in ("--allow-module", "--skip-bad-rows", MARKER):
