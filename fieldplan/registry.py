@@ -9,7 +9,6 @@ user allowed it (``--allow-module``, or ``allow_modules`` in their configuration
 from __future__ import annotations
 
 import difflib
-import importlib
 import os
 from importlib.metadata import entry_points
 
@@ -154,6 +153,24 @@ def load_actuator_class(name, *, allow_modules=True, on_import=None):
     raise ActuatorError(f"unknown actuator {name!r}; registered: {sorted(eps)}, or give 'module:Class'.{hint}")
 
 
+def _find_without_running(module):
+    """The import spec of ``module`` (dotted) found on the path without executing any package code."""
+    import importlib.machinery  # noqa: PLC0415
+    import importlib.util  # noqa: PLC0415
+
+    parts = module.split(".")
+    try:
+        spec = importlib.util.find_spec(parts[0])
+        for k in range(1, len(parts)):
+            if spec is None or not spec.submodule_search_locations:
+                return None
+            spec = importlib.machinery.PathFinder.find_spec(".".join(parts[:k + 1]),
+                                                            list(spec.submodule_search_locations))
+    except (ImportError, ValueError):
+        return None
+    return spec
+
+
 def _import_user_module(module, on_import=None, why=""):
     # A user's own model usually sits beside their scenario, in the folder they run from: look there
     # too, as `python -m` would, without leaving the folder on sys.path afterwards.
@@ -162,11 +179,7 @@ def _import_user_module(module, on_import=None, why=""):
 
     def load():
         if on_import is not None and module not in sys.modules:
-            top = module.partition(".")[0]
-            try:
-                spec = importlib.util.find_spec(top)   # finds the file without running it
-            except (ImportError, ValueError):
-                spec = None
+            spec = _find_without_running(module)
             if spec is None:
                 raise ImportError(f"No module named {module!r}")
             origin = spec.origin if spec.origin not in (None, "namespace") else \

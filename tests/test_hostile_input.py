@@ -22,8 +22,15 @@ import fieldplan.scenario as scenario_mod
 from fieldplan import Schedule, Segment
 from fieldplan.cli import main
 from fieldplan.errors import ScenarioError
-from fieldplan.export import (MARKER, OutputExistsError, OutputFolderError, check_output_folder, clean_stale_temps,
-                              output_folder, written_by_fieldplan)
+from fieldplan.export import (
+    MARKER,
+    OutputExistsError,
+    OutputFolderError,
+    check_output_folder,
+    clean_stale_temps,
+    output_folder,
+    written_by_fieldplan,
+)
 from fieldplan.scenario import load_scenario, read_yaml
 from fieldplan.schedule import atomic_write
 from fieldplan.tracking import TrackingDataError, read_tracks
