@@ -67,7 +67,7 @@ def build_parser():
             """)
     r.add_argument("scenario", help="scenario YAML file")
     r.add_argument("--out", "-o", default=None, help="output folder (default: <scenario name>-output)")
-    r.add_argument("--force", action="store_true", help="replace an output folder fieldplan wrote before (never one holding other files)")
+    r.add_argument("--force", action="store_true", help=_FORCE_HELP)
     _allow_module_arg(r)
     r.add_argument("--trials", type=_bounded_int(0, MAX_TRIALS), default=None, help="override simulation.trials")
     r.add_argument("--seed", type=_nonneg_int, default=None, help="override simulation.seed")
@@ -90,7 +90,7 @@ def build_parser():
             """)
     c.add_argument("scenarios", nargs="+", help="scenario YAML files")
     c.add_argument("--out", "-o", default="comparison", help="output folder (default: comparison)")
-    c.add_argument("--force", action="store_true", help="replace an output folder fieldplan wrote before (never one holding other files)")
+    c.add_argument("--force", action="store_true", help=_FORCE_HELP)
     _allow_module_arg(c)
     c.add_argument("--seeds", default="3", help="a count N (seeds 0..N-1) or a comma list (default 3)")
     c.add_argument("--trials", type=_bounded_int(0, MAX_TRIALS), default=1,
@@ -113,7 +113,7 @@ def build_parser():
             """)
     i.add_argument("scenario", help="scenario YAML file")
     i.add_argument("--out", "-o", default=None, help="output folder (default: <scenario name>-inspect)")
-    i.add_argument("--force", action="store_true", help="replace an output folder fieldplan wrote before (never one holding other files)")
+    i.add_argument("--force", action="store_true", help=_FORCE_HELP)
     _allow_module_arg(i)
     i.add_argument("--counts", default=None, help="body counts of the steerability curve, e.g. 1,2,3 "
                                                   "(default 1..number of bodies + 1)")
@@ -150,7 +150,7 @@ def build_parser():
             """)
     f.add_argument("tracks", help="tracking CSV (layout in fieldplan.tracking)")
     f.add_argument("--out", "-o", required=True, help="output folder")
-    f.add_argument("--force", action="store_true", help="replace an output folder fieldplan wrote before (never one holding other files)")
+    f.add_argument("--force", action="store_true", help=_FORCE_HELP)
     f.add_argument("--skip-bad-rows", action="store_true",
                    help="skip unreadable rows (bad quoting, wrong cell count, non-numbers) and report them, "
                         "instead of stopping at the first")
@@ -172,6 +172,9 @@ def build_parser():
     s.add_argument("--actuators-only", action="store_true", help="only list the registered actuators")
     return p
 
+
+_FORCE_HELP = ("replace the output folder if fieldplan wrote it (never the working folder, home, a folder holding "
+               "an input or other files)")
 
 #: Largest --grid and --trials of ``inspect`` (the speed map solves one LP per grid point).
 MAX_INSPECT_GRID, MAX_INSPECT_TRIALS = 512, 100_000
