@@ -80,6 +80,7 @@ MAX_DPI = 1200                  # outputs.dpi
 MAX_TRIALS = 100_000            # simulation.trials (every trial's trajectory is kept)
 
 _PROGRESS_OBSTACLES = 2_000     # show a progress bar (on a terminal) from this many obstacles
+_PROGRESS_VALUES = 50_000       # ... and from this many YAML values while reading
 _MAX_REPEATED_WARNINGS = 10     # one warning each for this many, then one summary
 
 
@@ -95,13 +96,16 @@ class _Bounds:
     """Nesting-depth and node-count bounds while composing (PyYAML composes recursively, so a deeply
     nested file would otherwise end in RecursionError)."""
 
-    def _init_bounds(self, max_depth, max_nodes):
+    def _init_bounds(self, max_depth, max_nodes, bar=None):
         self._depth, self._nodes = 0, 0
         self._max_depth, self._max_nodes = max_depth, max_nodes
+        self._bar = bar
 
     def compose_node(self, parent, index):
         self._depth += 1
         self._nodes += 1
+        if self._bar is not None and self._nodes % 4096 == 0:
+            self._bar.update(4096)
         try:
             if self._depth > self._max_depth:
                 raise _TooBig(self.peek_event().start_mark.line + 1,
@@ -133,18 +137,19 @@ if _CParser is not None:
                              yaml.resolver.Resolver):
         """libyaml's parser (several times faster on long obstacle lists) under the bounded Python composer."""
 
-        def __init__(self, text, max_depth, max_nodes):
+        def __init__(self, text, max_depth, max_nodes, bar=None):
             _CParser.__init__(self, text)
             yaml.composer.Composer.__init__(self)
             yaml.constructor.SafeConstructor.__init__(self)
             yaml.resolver.Resolver.__init__(self)
-            self._init_bounds(max_depth, max_nodes)
+            self._init_bounds(max_depth, max_nodes, bar)
 
 
 def _prescan(text, max_depth, max_nodes, max_alias):
     """Check the size limits on the parser's event stream, before any node is built.
 
-    Every collection's expanded size (values inside it, aliases counted at the size of their anchor)
+    Returns the number of values (aliases expanded), or None for malformed YAML. Every
+    collection's expanded size (values inside it, aliases counted at the size of their anchor)
     and height are tracked in one pass, so an alias bomb or a huge or deeply nested file is refused
     in about a second (libyaml parses; only counters are kept). Malformed YAML is left to the reader.
     """
@@ -191,9 +196,10 @@ def _prescan(text, max_depth, max_nodes, max_alias):
                                                           "values (fieldplan.scenario.MAX_ALIAS_NODES).")
                 close(size, height, None, ev.start_mark, size)
     except yaml.YAMLError:
-        return                 # the reader reports malformed YAML with its own message
+        return None            # the reader reports malformed YAML with its own message
     finally:
         parser.dispose()
+    return nodes
 
 
 def _merged_size(node, memo):
@@ -273,7 +279,7 @@ def _nearest_key(text, line):
     return "(top level)"
 
 
-def read_yaml(text, file="<scenario>"):
+def read_yaml(text, file="<scenario>", progress=False):
     """Parse YAML ``text`` with the safe loader, keeping the line of every key.
 
     Reading is bounded (:data:`MAX_DEPTH`, :data:`MAX_NODES`, :data:`MAX_ALIAS_NODES`): an alias
@@ -285,6 +291,8 @@ def read_yaml(text, file="<scenario>"):
         YAML source.
     file : str
         Name used in error messages.
+    progress : bool
+        Show a progress bar while a long file is read.
 
     Returns
     -------
@@ -305,17 +313,29 @@ def read_yaml(text, file="<scenario>"):
     max_depth, max_nodes, max_alias = MAX_DEPTH, MAX_NODES, MAX_ALIAS_NODES
     problems = []
     loader, node, early = None, _MISSING, None
+    bar = None
     if _CParser is not None:
-        loader = _FastBoundedLoader(text, max_depth, max_nodes)
         try:
-            _prescan(text, max_depth, max_nodes, max_alias)
-            node = loader.get_single_node()
+            total = _prescan(text, max_depth, max_nodes, max_alias)
+        except _TooBig as exc:
+            total, early = None, exc
+        if progress and total and total >= _PROGRESS_VALUES:
+            from tqdm.auto import tqdm  # noqa: PLC0415
+
+            bar = tqdm(total=total, desc=f"reading {os.path.basename(file)}", unit=" values", leave=False)
+        loader = _FastBoundedLoader(text, max_depth, max_nodes, bar)
+        try:
+            if early is None:
+                node = loader.get_single_node()
         except yaml.YAMLError:
             # Re-read with the pure-Python parser: its messages and marks are the ones users see.
             loader.dispose()
             loader = None
         except _TooBig as exc:
             early = exc
+        finally:
+            if bar is not None:
+                bar.close()
     if loader is None:
         loader = _BoundedLoader(text, max_depth, max_nodes)
 
@@ -2032,7 +2052,7 @@ def load_scenario(path_or_text, *, name=None, allow_modules=(), on_import=None, 
             raise ScenarioError([(file, None, "(file)", "no such file.")]) from None
         except (OSError, UnicodeDecodeError) as exc:
             raise ScenarioError([(file, None, "(file)", f"cannot read the file ({exc}).")]) from None
-    doc = read_yaml(text, file)
+    doc = read_yaml(text, file, progress=progress)
     return parse_scenario(doc, name=name, allow_modules=allow_modules, on_import=on_import, check_only=check_only,
                           progress=progress)
 

@@ -484,9 +484,11 @@ def test_obstacle_errors_still_name_their_index_and_warnings_are_capped():
 
 def test_long_obstacle_lists_show_progress(monkeypatch, capsys):
     monkeypatch.setattr(scenario_mod, "_PROGRESS_OBSTACLES", 5)
+    monkeypatch.setattr(scenario_mod, "_PROGRESS_VALUES", 50)
     obs = [f"{{rectangle: [{0.1 + 0.05 * i} mm, 0.45 mm, {0.12 + 0.05 * i} mm, 0.5 mm]}}" for i in range(10)]
     load_scenario(obstacle_scenario(obs), name="p", progress=True)
-    assert "reading obstacles" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert "reading obstacles" in err and "reading p" in err
     load_scenario(obstacle_scenario(obs), name="p")
     assert "reading obstacles" not in capsys.readouterr().err
 
