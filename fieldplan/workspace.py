@@ -129,7 +129,8 @@ class Workspace:
             raise WorkspaceError("workspace boundary must be a valid polygon with positive area.")
         obs = list(obstacles)
         arr = np.empty(len(obs), dtype=object)
-        arr[:] = obs
+        for i, o in enumerate(obs):          # one by one: numpy would unpack a tuple given by mistake
+            arr[i] = o
         kind_ok = np.fromiter((isinstance(o, (Polygon, MultiPolygon)) for o in obs), bool, len(obs))
         ok = kind_ok.copy()
         if kind_ok.any():            # checked all at once: shapely 2 works on arrays of geometries
