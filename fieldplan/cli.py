@@ -2,8 +2,8 @@
 
 Exit codes: 0 success; 1 planned (or replayed) but some goal was not reached; 2 bad input (the
 message names file, line and key, or channel, time and limit; no traceback); 3 internal error (a
-bug: the traceback is printed). ``fieldplan <subcommand> --help`` shows each subcommand with an
-example.
+bug: the traceback is printed); 130 interrupted (Ctrl-C), 143 terminated (SIGTERM; 129 for SIGHUP),
+leaving no partial output. ``fieldplan <subcommand> --help`` shows each subcommand with an example.
 """
 
 from __future__ import annotations
@@ -68,8 +68,9 @@ def build_parser():
             """)
     r.add_argument("scenario", help="scenario YAML file")
     r.add_argument("--out", "-o", default=None, help="output folder (default: <scenario name>-output)")
-    r.add_argument("--force", action="store_true", help="replace an existing output folder")
-    r.add_argument("--trials", type=_nonneg_int, default=None, help="override simulation.trials")
+    r.add_argument("--force", action="store_true", help=_FORCE_HELP)
+    _allow_module_arg(r)
+    r.add_argument("--trials", type=_bounded_int(0, MAX_TRIALS), default=None, help="override simulation.trials")
     r.add_argument("--seed", type=_nonneg_int, default=None, help="override simulation.seed")
     r.add_argument("--schedule", default=None, metavar="CSV_OR_JSON",
                    help="replay this schedule instead of planning (its channels must match the actuator)")
@@ -91,9 +92,11 @@ def build_parser():
             """)
     c.add_argument("scenarios", nargs="+", help="scenario YAML files")
     c.add_argument("--out", "-o", default="comparison", help="output folder (default: comparison)")
-    c.add_argument("--force", action="store_true", help="replace an existing output folder")
+    c.add_argument("--force", action="store_true", help=_FORCE_HELP)
+    _allow_module_arg(c)
     c.add_argument("--seeds", default="3", help="a count N (seeds 0..N-1) or a comma list (default 3)")
-    c.add_argument("--trials", type=_nonneg_int, default=1, help="trials per (variant, seed) (default 1)")
+    c.add_argument("--trials", type=_bounded_int(0, MAX_TRIALS), default=1,
+                   help="trials per (variant, seed) (default 1)")
     c.add_argument("--workers", type=_nonneg_int, default=None,
                    help="local worker processes (default: CPU count; 1: run in this process)")
     c.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -112,17 +115,22 @@ def build_parser():
             """)
     i.add_argument("scenario", help="scenario YAML file")
     i.add_argument("--out", "-o", default=None, help="output folder (default: <scenario name>-inspect)")
-    i.add_argument("--force", action="store_true", help="replace an existing output folder")
+    i.add_argument("--force", action="store_true", help=_FORCE_HELP)
+    _allow_module_arg(i)
     i.add_argument("--counts", default=None, help="body counts of the steerability curve, e.g. 1,2,3 "
                                                   "(default 1..number of bodies + 1)")
-    i.add_argument("--trials", type=_nonneg_int, default=20, help="random configurations per count (default 20)")
-    i.add_argument("--grid", type=_nonneg_int, default=32, help="speed-map grid points per side (default 32)")
+    i.add_argument("--trials", type=_bounded_int(0, MAX_INSPECT_TRIALS), default=20,
+                   help=f"random configurations per count (default 20, at most {MAX_INSPECT_TRIALS})")
+    i.add_argument("--grid", type=_bounded_int(2, MAX_INSPECT_GRID), default=32,
+                   help=f"speed-map grid points per side (default 32, at most {MAX_INSPECT_GRID})")
     i.add_argument("--quiet", "-q", action="store_true", help="print errors only")
 
     v = add("validate", "check scenario files without running them",
             """
             Read and validate each file, reporting every problem at once with file, line and key. With
             --normalised, print the file in its normalised SI form (what `fieldplan run` uses).
+            validate never imports or runs code: an actuator given as `module:Class` that is not a
+            registered plug-in is reported as not checked.
             """,
             """
             fieldplan validate scenarios/*.yaml
@@ -144,7 +152,10 @@ def build_parser():
             """)
     f.add_argument("tracks", help="tracking CSV (layout in fieldplan.tracking)")
     f.add_argument("--out", "-o", required=True, help="output folder")
-    f.add_argument("--force", action="store_true", help="write into an existing folder")
+    f.add_argument("--force", action="store_true", help=_FORCE_HELP)
+    f.add_argument("--skip-bad-rows", action="store_true",
+                   help="skip unreadable rows (bad quoting, wrong cell count, non-numbers) and report them, "
+                        "instead of stopping at the first")
     f.add_argument("--name", default="actuator", help="stem of the output files (default: actuator)")
     f.add_argument("--idle", default=None, help="name of the idle (all-off) primitive in the data")
     f.add_argument("--primitives", default=None, help="fit only these primitives (comma list)")
@@ -165,6 +176,32 @@ def build_parser():
             """)
     s.add_argument("--actuators-only", action="store_true", help="only list the registered actuators")
     return p
+
+
+_FORCE_HELP = ("replace the output folder if fieldplan wrote it (never the working folder, home, a folder holding "
+               "an input or other files)")
+
+#: Largest --grid and --trials of ``inspect`` (the speed map solves one LP per grid point).
+MAX_INSPECT_GRID, MAX_INSPECT_TRIALS = 512, 100_000
+#: Largest --trials of ``run`` and ``compare`` (as ``simulation.trials``), and number of --seeds.
+MAX_TRIALS, MAX_SEEDS = 100_000, 100_000
+
+
+def _allow_module_arg(p):
+    p.add_argument("--allow-module", action="append", default=[], metavar="MODULE",
+                   help="import this module for a `type: module:Class` actuator that is not a registered plug-in "
+                        "(repeatable; runs the module's code; the file imported is printed). Or list it under "
+                        "allow_modules in the user configuration file")
+
+
+def _bounded_int(lo, hi):
+    def parse(text):
+        v = _nonneg_int(text)
+        if not lo <= v <= hi:
+            raise argparse.ArgumentTypeError(f"expected a whole number from {lo} to {hi}, got {v}")
+        return v
+
+    return parse
 
 
 def _nonneg_int(text):
@@ -193,10 +230,15 @@ def _show_progress(args):
     return not getattr(args, "quiet", False) and sys.stderr.isatty()
 
 
-def _load(path, args):
+def _load(path, args, check_only=False):
     from .scenario import load_scenario  # noqa: PLC0415
 
-    sc = load_scenario(path)
+    def announce(module, origin, why):
+        print(f"note: importing actuator module {module!r} from {origin} ({why}); its code runs now.",
+              file=sys.stderr, flush=True)
+
+    sc = load_scenario(path, allow_modules=getattr(args, "allow_module", None) or (), on_import=announce,
+                       check_only=check_only, progress=_show_progress(args))
     for w in sc.warnings:
         _warn(args, w)
     return sc
@@ -213,6 +255,24 @@ def _note_variants(args, sc, command, verb):
                     f"`fieldplan compare {sc.source or '<file>'}`.")
 
 
+def _prepare_out(args, out, inputs):
+    """Refuse an output folder that may not be written, before any work; clear stale temporary folders."""
+    from .export import check_output_folder, clean_stale_temps  # noqa: PLC0415
+
+    check_output_folder(out, args.force, inputs)
+    for p in clean_stale_temps(out):
+        _say(args, f"note: removed {os.path.basename(p)}, a temporary folder left by an earlier run that was "
+                   "killed while writing.", err=True)
+
+
+def _inputs(paths, scenarios=()):
+    """Files a run reads: the given paths and the files its scenarios name (calibrations)."""
+    out = [p for p in paths if p]
+    for sc in scenarios:
+        out += list(getattr(sc, "input_files", ()) or ())
+    return out
+
+
 def _default_out(sc, suffix):
     base = os.path.splitext(os.path.basename(sc.source or sc.name))[0]
     return f"{base}-{suffix}"
@@ -221,12 +281,13 @@ def _default_out(sc, suffix):
 # ---------------------------------------------------------------------------------------------
 def _cmd_run(args):
     from .compare import run_scenario  # noqa: PLC0415
-    from .export import check_output_folder, write_outputs  # noqa: PLC0415
+    from .export import write_outputs  # noqa: PLC0415
 
     sc = _load(args.scenario, args)
     _note_variants(args, sc, "run", "plans and simulates")
     out = args.out or _default_out(sc, "output")
-    check_output_folder(out, args.force)
+    inputs = _inputs([args.scenario, args.schedule], [sc])
+    _prepare_out(args, out, inputs)
     schedule = None
     if args.schedule:
         schedule = _read_schedule(args.schedule, sc)
@@ -245,7 +306,7 @@ def _cmd_run(args):
 
         outputs = dataclasses.replace(outputs, plots=(), animation=False)
     try:
-        files = write_outputs(out, run, force=args.force, outputs=outputs)
+        files = write_outputs(out, run, force=args.force, outputs=outputs, inputs=inputs)
     except LimitError as exc:
         raise _UserError(f"refusing to export the schedule: {exc} Nothing was written.") from None
     agg = run.aggregate()
@@ -268,6 +329,8 @@ def _read_schedule(path, sc):
 
     if not os.path.exists(path):
         raise _UserError(f"{path}: no such schedule file.")
+    if not os.path.isfile(path):
+        raise _UserError(f"{path}: not a regular file (a folder, device or pipe cannot be a schedule).")
     try:
         if path.lower().endswith(".json"):
             return Schedule.read_json(path)
@@ -285,20 +348,22 @@ def _parse_seeds(text):
         if "," in text:
             seeds = [int(s) for s in text.split(",") if s.strip()]
         else:
-            seeds = list(range(int(text)))
+            n = int(text)
+            if n > MAX_SEEDS:           # before building the list
+                raise _UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {n}.")
+            seeds = list(range(n))
     except ValueError:
         raise _UserError(f"--seeds: expected a count or a comma list of whole numbers, got {text!r}.") from None
+    if len(seeds) > MAX_SEEDS:
+        raise _UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {len(seeds)}.")
     if not seeds or any(s < 0 for s in seeds):
         raise _UserError(f"--seeds: need at least one seed >= 0, got {text!r}.")
     return seeds
 
 
 def _cmd_compare(args):
-    import shutil  # noqa: PLC0415
-    import tempfile  # noqa: PLC0415
-
     from .compare import compare, make_executor  # noqa: PLC0415
-    from .export import check_output_folder, json_safe  # noqa: PLC0415
+    from .export import json_safe, output_folder  # noqa: PLC0415
     from .plots import save  # noqa: PLC0415
     from .schedule import atomic_write  # noqa: PLC0415
 
@@ -311,7 +376,8 @@ def _cmd_compare(args):
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
         raise _UserError(f"two scenarios or variants share the label(s) {dup}; give each file a distinct 'name'.")
-    check_output_folder(args.out, args.force)
+    inputs = _inputs(args.scenarios, [sc for _, sc in loaded])
+    _prepare_out(args, args.out, inputs)
     n_tasks = len(scenarios) * len(seeds)
     workers = args.workers if args.workers is not None else min(os.cpu_count() or 1, n_tasks)
     _say(args, f"comparing {len(scenarios)} variant(s) x {len(seeds)} seed(s), {args.trials} trial(s) each"
@@ -319,22 +385,13 @@ def _cmd_compare(args):
     with make_executor(args.scheduler, workers) as ex:
         cmp = compare(scenarios, seeds=seeds, trials=args.trials, executor=ex, progress=_show_progress(args))
     out = os.path.abspath(args.out)
-    parent = os.path.dirname(out)
-    os.makedirs(parent, exist_ok=True)
-    tmp = tempfile.mkdtemp(prefix=f".{os.path.basename(out)}.tmp-", dir=parent)
-    try:
+    with output_folder(out, args.force, inputs, command="compare") as tmp:
         atomic_write(os.path.join(tmp, "comparison.md"), cmp.to_markdown() + "\n")
         atomic_write(os.path.join(tmp, "comparison.csv"), cmp.to_csv())
         atomic_write(os.path.join(tmp, "comparison.json"),
                      json.dumps(json_safe({"seeds": seeds, "trials": args.trials, "rows": cmp.rows,
                                            "runs": cmp.runs}), indent=1, allow_nan=False))
         save(cmp.bar_chart(), os.path.join(tmp, "comparison.png"))
-        from .export import _swap  # noqa: PLC0415
-
-        _swap(tmp, out, args.force)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
     _say(args, cmp.to_markdown())
     for r in cmp.rows:
         for m in r["error_messages"][:1]:
@@ -349,26 +406,26 @@ def _cmd_compare(args):
 
 # ---------------------------------------------------------------------------------------------
 def _cmd_inspect(args):
-    import shutil  # noqa: PLC0415
-    import tempfile  # noqa: PLC0415
-
     import numpy as np  # noqa: PLC0415
 
-    from .export import _swap, check_output_folder  # noqa: PLC0415
+    from .export import output_folder  # noqa: PLC0415
     from .plots import plot_primitive_fields, save  # noqa: PLC0415
     from .schedule import atomic_write  # noqa: PLC0415
 
     sc = _load(args.scenario, args)
     _note_variants(args, sc, "inspect", "inspects")
     out = os.path.abspath(args.out or _default_out(sc, "inspect"))
-    check_output_folder(out, args.force)
+    inputs = _inputs([args.scenario], [sc])
+    _prepare_out(args, out, inputs)
     if args.counts:
         try:
             counts = [int(x) for x in args.counts.split(",") if x.strip()]
         except ValueError:
             raise _UserError(f"--counts: expected a comma list of whole numbers, got {args.counts!r}.") from None
-        if not counts or min(counts) < 1:
-            raise _UserError(f"--counts: counts must be >= 1, got {args.counts!r}.")
+        from .scenario import MAX_BODIES  # noqa: PLC0415
+
+        if not counts or min(counts) < 1 or max(counts) > MAX_BODIES:
+            raise _UserError(f"--counts: counts must be from 1 to {MAX_BODIES}, got {args.counts!r}.")
     else:
         # Go past the one-step counting limit (fieldplan.steer.counting_limit) so the curve shows
         # where it drops, within a budget of six counts.
@@ -376,15 +433,12 @@ def _cmd_inspect(args):
 
         limit = counting_limit(sc.actuator.basis(sc.bodies[:1], sc.medium, sc.starts[:1]))
         counts = list(range(1, min(max(len(sc.bodies) + 1, int(limit) + 2), 6) + 1))
-    parent = os.path.dirname(out)
-    os.makedirs(parent, exist_ok=True)
-    tmp = tempfile.mkdtemp(prefix=f".{os.path.basename(out)}.tmp-", dir=parent)
     lines = [f"# {sc.name}: {sc.actuator.describe()}", ""]
     report = {"scenario": sc.name, "actuator": type(sc.actuator).__name__,
               "channels": [{"name": c.name, "unit": c.unit, "lower": c.lower, "upper": c.upper}
                            for c in sc.actuator.channels],
               "primitives": [p.name for p in sc.actuator.primitives()]}
-    try:
+    with output_folder(out, args.force, inputs, command="inspect") as tmp:
         kinds = list({b.name: b for b in sc.bodies}.values())
         for b in kinds:
             fig = plot_primitive_fields(sc.actuator, b, sc.medium, sc.workspace)
@@ -423,12 +477,8 @@ def _cmd_inspect(args):
         from .export import json_safe  # noqa: PLC0415
 
         atomic_write(os.path.join(tmp, "inspect.json"), json.dumps(json_safe(report), indent=1, allow_nan=False))
-        _swap(tmp, out, args.force)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
     _say(args, *lines)
-    _say(args, f"outputs in {out}:", *(f"  {n}" for n in sorted(os.listdir(out))))
+    _say(args, f"outputs in {out}:", *(f"  {n}" for n in sorted(os.listdir(out)) if not n.startswith(".")))
     return EXIT_OK
 
 
@@ -493,12 +543,12 @@ def _count_figure(cc, body):
     return fig
 
 
-def _load_each(paths, args):
+def _load_each(paths, args, check_only=False):
     """Load every scenario file; returns ``[(path, scenario)]`` and all problems of the bad ones."""
     loaded, problems = [], []
     for path in paths:
         try:
-            loaded.append((path, _load(path, args)))
+            loaded.append((path, _load(path, args, check_only=check_only)))
         except ScenarioError as exc:
             problems.extend(exc.problems)
     return loaded, problems
@@ -508,7 +558,7 @@ def _load_each(paths, args):
 def _cmd_validate(args):
     from .scenario import dump_scenario  # noqa: PLC0415
 
-    loaded, problems = _load_each(args.scenarios, args)
+    loaded, problems = _load_each(args.scenarios, args, check_only=True)
     for path, sc in loaded:
         if args.normalised:
             print(f"# {path} (normalised, SI units)")
@@ -517,9 +567,14 @@ def _cmd_validate(args):
                 print(f"# {path}: variant {v.name}")
                 print(dump_scenario(v))
         else:
-            nb, nc = len(sc.bodies), len(sc.actuator.channels)
-            _say(args, f"{path}: ok - {nb} bod{'y' if nb == 1 else 'ies'}, {type(sc.actuator).__name__} with "
-                       f"{nc} channel{'' if nc == 1 else 's'}"
+            nb = len(sc.bodies)
+            if sc.actuator is None:
+                what = (f"actuator {sc.config['actuator']['type']} not checked (validate does not import "
+                        "modules that are not registered plug-ins)")
+            else:
+                nc = len(sc.actuator.channels)
+                what = f"{type(sc.actuator).__name__} with {nc} channel{'' if nc == 1 else 's'}"
+            _say(args, f"{path}: ok - {nb} bod{'y' if nb == 1 else 'ies'}, {what}"
                        + (f", {len(sc.variants)} variants" if sc.variants else ""))
     if problems:
         raise ScenarioError(problems)
@@ -531,10 +586,13 @@ def _cmd_fit(args):
         from .calibrate import calibrate_command  # noqa: PLC0415
     except ImportError as exc:
         raise _UserError(f"calibration is not available ({exc}).") from None
-    if os.path.exists(args.out) and not args.force:
-        raise _UserError(f"output folder {args.out!r} already exists; pass --force to write into it.")
+    from .export import output_folder  # noqa: PLC0415
+
     if not os.path.exists(args.tracks):
         raise _UserError(f"{args.tracks}: no such tracking file.")
+    if not os.path.isfile(args.tracks):
+        raise _UserError(f"{args.tracks}: not a regular file (a folder, device or pipe is not a tracking CSV).")
+    _prepare_out(args, args.out, [args.tracks])
     units = None
     if args.units:
         units = {}
@@ -547,8 +605,15 @@ def _cmd_fit(args):
     note = args.note if args.note is not None else _previous_note(os.path.join(args.out, f"{args.name}.json"))
     if args.note is None and note:
         _say(args, f"keeping the note of the actuator being replaced: {note!r} (change it with --note)")
-    rep = calibrate_command(args.tracks, args.out, primitives=prims, units=units, idle=args.idle, name=args.name,
-                            plots=not args.no_plots, warn=False, note=note)
+    out = os.path.abspath(args.out)
+    with output_folder(out, args.force, [args.tracks], command="fit") as tmp:
+        rep = calibrate_command(args.tracks, tmp, primitives=prims, units=units, idle=args.idle, name=args.name,
+                                plots=not args.no_plots, warn=False, note=note, skip_bad_rows=args.skip_bad_rows,
+                                report_dir=out)
+    if rep.get("skipped_rows"):
+        sk = rep["skipped_rows"]
+        _warn(args, f"skipped {len(sk)} bad row(s) of {args.tracks} (--skip-bad-rows): "
+                    + "; ".join(sk[:5]) + (f"; ... ({len(sk) - 5} more in the report)" if len(sk) > 5 else ""))
     for w in rep.get("warnings", []):
         _warn(args, w)
     for row in rep.get("fields", [])[:40]:
@@ -646,6 +711,18 @@ _COMMANDS = {"run": _cmd_run, "compare": _cmd_compare, "inspect": _cmd_inspect, 
              "fit": _cmd_fit, "schema": _cmd_schema}
 
 
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM (or SIGHUP) arrived: unwind like Ctrl-C, so temporary output is removed on the way out."""
+
+    def __init__(self, signum):
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _on_signal(signum, frame):
+    raise _Terminated(signum)
+
+
 def main(argv=None):
     """Entry point of the ``fieldplan`` console script; returns the exit code."""
     parser = build_parser()
@@ -653,14 +730,25 @@ def main(argv=None):
     if not args.command:
         parser.print_help()
         return EXIT_BAD_INPUT
+    import signal  # noqa: PLC0415
+    import threading  # noqa: PLC0415
     import warnings  # noqa: PLC0415
 
-    with warnings.catch_warnings():
-        if getattr(args, "quiet", False):
-            warnings.simplefilter("ignore")
-        else:
-            warnings.showwarning = _show_warning
-        return _dispatch(args)
+    previous = {}
+    if threading.current_thread() is threading.main_thread():
+        for sig in (signal.SIGTERM, getattr(signal, "SIGHUP", None)):
+            if sig is not None:
+                previous[sig] = signal.signal(sig, _on_signal)
+    try:
+        with warnings.catch_warnings():
+            if getattr(args, "quiet", False):
+                warnings.simplefilter("ignore")
+            else:
+                warnings.showwarning = _show_warning
+            return _dispatch(args)
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
@@ -679,6 +767,12 @@ def _dispatch(args):
     except (FieldplanError, _UserError) as exc:
         print(f"fieldplan: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except _Terminated as exc:
+        import signal  # noqa: PLC0415
+
+        print(f"fieldplan: terminated ({signal.Signals(exc.signum).name}); unfinished output was removed.",
+              file=sys.stderr)
+        return 128 + exc.signum
     except KeyboardInterrupt:
         print("fieldplan: interrupted", file=sys.stderr)
         return 130
@@ -691,7 +785,8 @@ def _dispatch(args):
         import traceback  # noqa: PLC0415
 
         traceback.print_exc()
-        print("fieldplan: internal error (this is a bug; please report it with the scenario file).",
+        what = {"fit": "the tracking file", "schema": "the command line"}.get(args.command, "the scenario file")
+        print(f"fieldplan: internal error (this is a bug; please report it with {what} and the command line).",
               file=sys.stderr)
         return EXIT_INTERNAL
 
