@@ -612,8 +612,10 @@ def _cmd_fit(args):
                                 report_dir=out)
     if rep.get("skipped_rows"):
         sk = rep["skipped_rows"]
-        _warn(args, f"skipped {len(sk)} bad row(s) of {args.tracks} (--skip-bad-rows): "
-                    + "; ".join(sk[:5]) + (f"; ... ({len(sk) - 5} more in the report)" if len(sk) > 5 else ""))
+        # Not a warning that -q silences: the user asked for rows to be dropped and must see which.
+        _say(args, f"warning: skipped {len(sk)} bad row(s) of {args.tracks} (--skip-bad-rows): "
+                   + "; ".join(sk[:5]) + (f"; ... ({len(sk) - 5} more in the report)" if len(sk) > 5 else ""),
+             err=True)
     for w in rep.get("warnings", []):
         _warn(args, w)
     for row in rep.get("fields", [])[:40]:
