@@ -300,8 +300,8 @@ class Controller(ControllerBase):
             val[:, i], grad[:, i] = m.value_and_gradient(flat[:, i])
         return val.reshape(shp + (self.n,)), grad.reshape(shp + (self.n, 2))
 
-    def _deficits(self, X):
-        """Separation and wall deficits of positions ``X`` (..., n, 2), m: (..., ) summed."""
+    def _deficits(self, X, walls=True):
+        """Separation (and wall) deficits of positions ``X`` (..., n, 2), m: (..., ) summed."""
         shp = X.shape[:-2]
         flat = X.reshape(-1, self.n, 2)
         total = np.zeros(flat.shape[0])
@@ -310,8 +310,9 @@ class Controller(ControllerBase):
             dist = np.linalg.norm(flat[:, i] - flat[:, j], axis=2)
             need = self.radii[i] + self.radii[j] + self.clearance
             total += np.maximum(need - dist, 0.0).sum(axis=1)
-        clr = self.workspace.clearance(flat.reshape(-1, 2)).reshape(flat.shape[:2])
-        total += np.maximum(self.radii[None] - clr, 0.0).sum(axis=1)
+        if walls:
+            clr = self.workspace.clearance(flat.reshape(-1, 2)).reshape(flat.shape[:2])
+            total += np.maximum(self.radii[None] - clr, 0.0).sum(axis=1)
         return total.reshape(shp)
 
     def _merit(self, X, Ws, pushed=0.0):
@@ -324,7 +325,9 @@ class Controller(ControllerBase):
         cost = 0.5 * np.sum((J / T) ** 2 * self._stage[None, :, None] * self._body_w[None, None], axis=(1, 2))
         prev = np.concatenate([np.broadcast_to(self._prev, (Ws.shape[0], 1, self.K)), Ws[:, :-1]], axis=1)
         cost += s.effort_weight * np.sum(Ws**2, axis=(1, 2)) + s.smoothness_weight * np.sum((Ws - prev) ** 2, axis=(1, 2))
-        cost += self._rho * (np.sum(self._deficits(X[:, 1:]), axis=1) + pushed) / L
+        mid = 0.5 * (X[:, 1:] + X[:, :-1])
+        cost += self._rho * (np.sum(self._deficits(X[:, 1:]), axis=1) + np.sum(self._deficits(mid, walls=False), axis=1)
+                             + pushed) / L
         return cost
 
     @property
