@@ -635,6 +635,14 @@ class FloorSolver:
         window = box(x0 - eps, y0 - eps, x1 + eps, y1 + eps)
         px, py = g.nx * g.dx, g.ny * g.dy
         half = 0.5 * np.hypot(g.dx, g.dy)
+        if self.layout.min_gap < max(g.dx, g.dy):
+            i, j = np.unravel_index(np.argmin(self.layout.distances() + np.diag(np.full(len(self.layout), np.inf))),
+                                    (len(self.layout),) * 2)
+            raise ActuatorError(
+                f"electrodes {self.layout.names[i]!r} and {self.layout.names[j]!r} are {self.layout.min_gap:.3g} m "
+                f"apart, less than the grid spacing {max(g.dx, g.dy):.3g} m: the gap is not resolved; refine the "
+                "grid (more points) to at least a few nodes per gap."
+            )
         for k, (name, poly) in enumerate(zip(self.layout.names, self.layout.polygons)):
             if not g.periodic and not window.contains(poly):
                 raise ActuatorError(
