@@ -61,6 +61,8 @@ __all__ = [
     "layout_from_spec",
     "Grid",
     "FloorSolver",
+    "resolution_problems",
+    "RESOLUTION_SPACINGS",
     "HalfSpaceField",
     "half_space_fields",
     "square_field_gradient",
@@ -556,7 +558,8 @@ class FloorSolver:
         net charge allowed), by a convolution on a doubled grid whose kernel is the point-sampled
         Green's function lifted to ``z0 = 3`` spacings plus the spectral remainder
         ``(1 - exp(-|k| z0)) / |k|`` (so it equals the band-limited ``1/|k|`` of the periodic case
-        up to an aliasing error ~ ``exp(-2 pi z0 / h)``, about 1e-8). The symmetric positive-definite
+        up to the aliasing of the sampled part, below ``exp(-pi z0 / h)`` = 8e-5 relative at the
+        Nyquist wavenumber and far less below it). The symmetric positive-definite
         system ``(S + D) E_z = V`` on the covered nodes is solved by preconditioned conjugate
         gradients (preconditioner: the inverse operator ``|k|`` restricted to the covered nodes,
         with a diagonal scaling for the partially covered ones),
@@ -1031,7 +1034,8 @@ def _single_layer_multipliers(grid, z, which):
         ``exp(-|k| z) / |k|`` times the derivative symbols (mean mode dropped). Free space: the
         point-sampled half-space Green's function ``1 / (2 pi R)`` at height ``z + z1`` and its
         derivatives, plus the spectral remainder ``(exp(-|k| z) - exp(-|k| (z + z1))) / |k|``, with
-        ``z1 = max(0, 3 h - z)`` so that the sampled part is smooth on the grid.
+        ``z1 = max(0, 3 h - z)`` so that the sampled part is smooth on the grid (aliasing below
+        ``exp(-3 pi)`` = 8e-5 relative at the Nyquist wavenumber).
     """
     key = (grid.key(), repr(float(z)), which)
     if key in _MEMO_KERNELS:
@@ -1051,7 +1055,6 @@ def _single_layer_multipliers(grid, z, which):
         h = max(grid.dx, grid.dy)
         z1 = max(0.0, _LIFT * h - z)
         Z = z + z1
-        rem = np.where(K > 0, (np.exp(-K * z) - np.exp(-K * Z)) / Kn, z1)
         Ny, Nx = shape
         ox = np.arange(Nx)
         ox = np.where(ox <= Nx // 2, ox, ox - Nx) * grid.dx
@@ -1067,9 +1070,38 @@ def _single_layer_multipliers(grid, z, which):
             R3, R5 = R2 * R, R2 * R2 * R
             samples = [-c * X / R3, -c * Y / R3, -c * Z / R3, c * (3 * X * X - R2) / R5, c * 3 * X * Y / R5,
                        c * 3 * X * Z / R5, c * (3 * Y * Y - R2) / R5, c * 3 * Y * Z / R5]
-        out = np.stack([scipy.fft.rfft2(smp) + s * rem for smp, s in zip(samples, symbols)])
+        out = np.stack([scipy.fft.rfft2(smp) for smp in samples])
+        if z1 > 0:
+            # The field kernels decay faster than the potential's (1/r^4, 1/r^5): a smaller grid will do.
+            out += _remainder_multipliers(grid, shape, z, Z, which, grow=4 if which == "potential" else 2)
     _memo_put(_MEMO_KERNELS, key, out, 4)
     return out
+
+
+def _remainder_multipliers(grid, shape, z, Z, which, grow=4):
+    """Multipliers of the short-range remainder ``(exp(-|k| z) - exp(-|k| Z)) / |k|`` (and derivatives).
+
+    The remainder decays like ``(Z - z)^2 / r^3`` in real space. Evaluated directly on the doubled
+    grid its periodic images would sit one window away and shift the potential by ~1e-4 on small
+    windows; so it is transformed on a grid ``grow`` times larger, cut to the offsets the doubled
+    grid needs, and transformed back (images ``grow`` times farther, ~1e-6).
+    """
+    Ny, Nx = shape
+    big = (grow * Ny, grow * Nx)
+    KX, KY, KXo, KYo, K = _wavenumbers(big, grid.spacing)
+    Kn = np.where(K > 0, K, 1.0)
+    rem = np.where(K > 0, (np.exp(-K * z) - np.exp(-K * Z)) / Kn, Z - z)
+    symbols = [np.ones_like(K)]
+    if which == "fields":
+        symbols = [1j * KXo + 0 * K, 1j * KYo + 0 * K, -K, -KX**2 + 0 * K, -KXo * KYo, -1j * KXo * K,
+                   -KY**2 + 0 * K, -1j * KYo * K]
+    iy = np.r_[0:Ny // 2 + 1, big[0] - (Ny - Ny // 2 - 1):big[0]]
+    ix = np.r_[0:Nx // 2 + 1, big[1] - (Nx - Nx // 2 - 1):big[1]]
+    out = []
+    for sym in symbols:
+        kern = scipy.fft.irfft2(sym * rem, s=big)[np.ix_(iy, ix)]
+        out.append(scipy.fft.rfft2(kern))
+    return np.stack(out)
 
 
 def normal_field_fields(normal_field, grid, z, *, _spectrum=None):
@@ -1105,6 +1137,51 @@ def normal_field_fields(normal_field, grid, z, *, _spectrum=None):
     for c in range(8):
         parts[..., c, :, :] = scipy.fft.irfft2(spec * mult[c], s=shape, workers=-1)[..., :ny, :nx]
     return HalfSpaceField(None, parts[..., :3, :, :], parts[..., 3:, :, :])
+
+
+#: Fewest grid spacings across the narrowest electrode or gap before :func:`resolution_problems`
+#: reports it. Measured against the exact periodic solution (tests/test_electrostatics.py): with 4
+#: spacings across the narrowest feature the insulating model's |E|^2 is within about 1 % at a height
+#: of that feature's width; the error grows fast below.
+RESOLUTION_SPACINGS = 4
+
+
+def resolution_problems(layout, grid, spacings=RESOLUTION_SPACINGS):
+    """Electrodes and gaps of ``layout`` narrower than ``spacings`` grid spacings, as sentences.
+
+    An electrode part is narrower than ``w`` when a morphological opening of the outline by a
+    square of side ``w`` (mitred buffer ``-w/2`` then ``+w/2``, exact for rectangles and convex
+    polygons) removes area from it.
+
+    Parameters
+    ----------
+    layout : ElectrodeLayout
+    grid : Grid
+    spacings : float
+        Fewest grid spacings wanted across every electrode and gap.
+
+    Returns
+    -------
+    list of str
+        Empty when everything is resolved.
+    """
+    h = max(grid.dx, grid.dy)
+    w = spacings * h
+    out = []
+    gap = layout.min_gap
+    if gap < w * (1 - 1e-9):
+        out.append(f"the narrowest gap between electrodes ({gap * 1e6:.3g} um) spans {gap / h:.2g} grid spacings")
+    narrow = []
+    for name, poly in zip(layout.names, layout.polygons):
+        a = 0.5 * w * (1 - 1e-6)      # a feature exactly w wide is resolved
+        opened = poly.buffer(-a, join_style="mitre").buffer(a, join_style="mitre")
+        if poly.area - opened.intersection(poly).area > 1e-6 * poly.area:
+            narrow.append(name)
+    if narrow:
+        out.append(f"electrode{'s' if len(narrow) > 1 else ''} {', '.join(repr(n) for n in narrow[:4])}"
+                   f"{'...' if len(narrow) > 4 else ''} {'have' if len(narrow) > 1 else 'has'} parts narrower than "
+                   f"{spacings:g} grid spacings ({w * 1e6:.3g} um)")
+    return out
 
 
 # ------------------------------------------------------------------------------------------------
