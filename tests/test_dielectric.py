@@ -537,7 +537,8 @@ def test_operating_warnings():
 
 
 def test_resolution_warning():
-    arr = ElectrodeArray(pad_array(1, 2, 50e-6, 20e-6), [1e6], grid_points=24)
+    with pytest.warns(ResolutionWarning, match="narrowest gap"):     # 20 um gap, 7.8 um spacing
+        arr = ElectrodeArray(pad_array(1, 2, 50e-6, 20e-6), [1e6], grid_points=24)
     with pytest.warns(ResolutionWarning, match="grid spacings"):
         arr.velocity(BEAD, BUFFER, [[0.0, 0.0]], arr.primitives()[0].values)
 
