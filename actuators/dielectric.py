@@ -19,7 +19,8 @@ which can levitate a particle under negative DEP, is not integrated); the partic
 compared with the field's length scale (dipole approximation; higher multipoles matter at field
 nulls); electrothermal and AC-electro-osmotic flows, electrode polarisation and the induced
 change of the field by the particle itself are not modelled; the bare floor between electrodes
-follows the gap approximation stated in :mod:`actuators.electrostatics`.
+is an insulator (the exact mixed problem, :mod:`actuators.electrostatics`; ``gap_model="linear"``
+selects the earlier linear-gap approximation).
 
 Drive convention: every electrode carries ``V_k cos(omega t)`` with the same frequency; a
 channel value is the signed **peak** amplitude ``V_k`` (negative = antiphase), so
