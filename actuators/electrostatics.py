@@ -607,6 +607,16 @@ class FloorSolver:
     gap_model : {"insulating", "linear"}
         Boundary condition on the bare floor (see above).
 
+    Attributes
+    ----------
+    labels : ndarray of int, shape (ny, nx)
+        Electrode index of each node, -1 on bare floor (insulating model: every node whose cell
+        the electrode covers in part).
+    coverage : ndarray, shape (ny, nx)
+        Covered fraction of each node's cell (0 or 1 in the linear model).
+    iterations : int or None
+        Conjugate-gradient iterations of the last insulating solve.
+
     Raises
     ------
     ActuatorError
@@ -633,6 +643,7 @@ class FloorSolver:
         self.grid = grid
         self.gap_model = gap_model
         self.matrix = self.coupling = None
+        self.iterations = None
         self._lu = None
         self._b = None
         self._kernel = None
@@ -1102,6 +1113,9 @@ def _remainder_multipliers(grid, shape, z, Z, which, grow=4):
     grid needs, and transformed back (images ``grow`` times farther, ~1e-6).
     """
     Ny, Nx = shape
+    # Bounded memory: at most ~16 M points for the enlarged grid (large windows need it least, their
+    # images being far away already).
+    grow = int(max(1, min(grow, np.floor(np.sqrt(16e6 / (Ny * Nx))))))
     big = (grow * Ny, grow * Nx)
     KX, KY, KXo, KYo, K = _wavenumbers(big, grid.spacing)
     Kn = np.where(K > 0, K, 1.0)
