@@ -16,7 +16,7 @@ The chain, each step a plain function or small class over arrays:
    with 8 spacings across the narrowest strip or gap, ``|E|^2`` and ``d|E|^2/dz`` are within
    0.2-0.4 % at a height of one strip width and 0.1 % far above; with 4 spacings about 1 %
    (a ResolutionWarning from the actuator below that, :func:`resolution_problems`). Isolated
-   disc and square plates give their published capacitances to 1e-3 at 24 spacings across.
+   disc and square plates give their published capacitances to 3e-4 at 24 spacings across.
    **Kept for comparison (``gap_model="linear"``):** electrode nodes hold their voltage and the
    bare floor solves the 2-D Laplace equation in the floor plane (a linear ramp across a straight
    gap, 0 V on the window edge, edges snapped to nodes). That is not the physics of an insulating
@@ -568,7 +568,8 @@ class FloorSolver:
         multiplier ``1/|k|`` (half-space Green's function ``1 / (2 pi r)``). ``S`` is applied by FFT:
         on a periodic grid as the periodic spectral operator (zero mean normal field per period,
         the floating average potential is solved for); otherwise in free space (0 V at infinity,
-        net charge allowed), by a convolution on a doubled grid whose kernel is the point-sampled
+        net charge allowed), by a convolution on the doubled bounding box of the electrodes (the
+        solve needs the potential on the electrodes only) whose kernel is the point-sampled
         Green's function lifted to ``z0 = 3`` spacings plus the spectral remainder
         ``(1 - exp(-|k| z0)) / |k|`` (so it equals the band-limited ``1/|k|`` of the periodic case
         up to the aliasing of the sampled part, below ``exp(-pi z0 / h)`` = 8e-5 relative at the
@@ -824,21 +825,36 @@ class FloorSolver:
         h = float(np.sqrt(g.dx * g.dy))
         self._diag = self.BLEND * h * (1.0 - f) / f
         self._kernel = _single_layer_multipliers(g, 0.0, "potential")[0]
-        # Preconditioner: the inverse operator |k|, on the window only (periodic there, cheaper than
-        # the doubled grid; an approximate inverse is all a preconditioner needs).
-        self._precond = _wavenumbers(g.shape, g.spacing)[-1]
+        # The solve only needs the potential on the covered nodes: in free space it runs on the
+        # bounding box of the electrodes (its doubled grid), not on the whole window with its margin.
+        if g.periodic:
+            sub, (j0, i0) = g, (0, 0)
+        else:
+            jj, ii = np.divmod(self._act, g.nx)
+            j0, j1 = _span(jj.min(), jj.max() + 1, g.ny)
+            i0, i1 = _span(ii.min(), ii.max() + 1, g.nx)
+            sub = Grid(g.xmin + i0 * g.dx, g.ymin + j0 * g.dy, g.dx, g.dy, i1 - i0, j1 - j0, False)
+        self._sub = sub
+        self._act_sub = (jj - j0) * sub.nx + (ii - i0) if not g.periodic else self._act
+        self._sub_kernel = self._kernel if g.periodic else _single_layer_multipliers(sub, 0.0, "potential")[0]
+        # Preconditioner: the inverse operator |k|, on the box only (periodic there, cheaper than
+        # the doubled grid; an approximate inverse is all a preconditioner needs) ...
+        # The mean mode gets the lowest nonzero wavenumber instead of 0, so the preconditioner stays
+        # definite when an electrode fills the whole box.
+        K = _wavenumbers(sub.shape, sub.spacing)[-1]
+        self._precond = np.where(K > 0, K, np.min(K[K > 0]))
         # ... scaled symmetrically by sqrt(S_ii / (S_ii + D_ii)), so that the large Robin terms of
         # nearly bare cells do not spoil it (cuts the iterations about fourfold on pad arrays).
-        s_self = float(scipy.fft.irfft2(self._kernel, s=_solve_shape(g))[0, 0])
+        s_self = float(scipy.fft.irfft2(self._sub_kernel, s=_solve_shape(sub))[0, 0])
         self._scale = np.sqrt(s_self / (s_self + self._diag))
 
     def _apply(self, x, mult, shape=None):
-        """``R F^-1 mult F R^T x`` for x of shape (M, m) on the covered nodes."""
-        g = self.grid
+        """``R F^-1 mult F R^T x`` for x of shape (M, m) on the covered nodes (solve box)."""
+        g = self._sub
         full = np.zeros((x.shape[0], g.ny * g.nx))
-        full[:, self._act] = x
+        full[:, self._act_sub] = x
         out = _convolve(full.reshape(-1, g.ny, g.nx), mult, _solve_shape(g) if shape is None else shape)
-        return out.reshape(x.shape[0], -1)[:, self._act]
+        return out.reshape(x.shape[0], -1)[:, self._act_sub]
 
     def _solve_insulating(self, v):
         """Normal field on the covered nodes, shape (M, m) V/m, and the floating potential (M,) V."""
@@ -854,13 +870,13 @@ class FloorSolver:
                 return x
 
         def A(x):
-            return proj(self._apply(proj(x), self._kernel) + self._diag * proj(x))
+            return proj(self._apply(proj(x), self._sub_kernel) + self._diag * proj(x))
 
         def M(r):
-            return proj(self._scale * self._apply(self._scale * proj(r), self._precond, self.grid.shape))
+            return proj(self._scale * self._apply(self._scale * proj(r), self._precond, self._sub.shape))
 
         x, self.iterations = _block_pcg(A, M, proj(b), self.TOLERANCE, self.MAX_ITERATIONS)
-        c = (b - self._apply(x, self._kernel) - self._diag * x).mean(axis=1) if periodic else np.zeros(len(v))
+        c = (b - self._apply(x, self._sub_kernel) - self._diag * x).mean(axis=1) if periodic else np.zeros(len(v))
         return x, c
 
     def _voltages(self, voltages):
@@ -976,6 +992,13 @@ class FloorSolver:
     def unit_responses(self):
         """Floor potential of each electrode at 1 V with all others at 0 V, shape (K, ny, nx), V."""
         return self.solve(np.eye(len(self.layout)))
+
+
+def _span(lo, hi, n, minimum=4):
+    """Index range ``[lo, hi)`` widened to at least ``minimum`` inside ``[0, n)``."""
+    while hi - lo < minimum:
+        lo, hi = max(lo - 1, 0), min(hi + 1, n)
+    return int(lo), int(hi)
 
 
 def _block_pcg(A, M, b, tol, maxiter):

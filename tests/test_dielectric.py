@@ -308,9 +308,11 @@ def test_floor_potential_is_bounded_and_held_on_electrodes():
     solver = FloorSolver(lay, Grid.around(lay, 96))
     phi = solver.solve([3.0, -2.0])
     full = solver.coverage == 1.0
-    np.testing.assert_allclose(phi[full & (solver.labels == 0)], 3.0, atol=1e-7)
-    np.testing.assert_allclose(phi[full & (solver.labels == 1)], -2.0, atol=1e-7)
-    assert phi.max() < 3.0 + 1e-7 and phi.min() > -2.0 - 1e-7
+    # (to 1e-5 V: the floor potential is evaluated with the window's kernel, the solve with that of the
+    # electrodes' bounding box; they differ by the far images of a short-range remainder, ~1e-6)
+    np.testing.assert_allclose(phi[full & (solver.labels == 0)], 3.0, atol=1e-5)
+    np.testing.assert_allclose(phi[full & (solver.labels == 1)], -2.0, atol=1e-5)
+    assert phi.max() < 3.0 + 1e-5 and phi.min() > -2.0 - 1e-5
     # the normal field vanishes on the bare floor and is positive on the positive comb
     ez = solver.normal_field([3.0, -2.0])
     assert np.all(ez[solver.labels < 0] == 0.0) and ez[full & (solver.labels == 0)].min() > 0
