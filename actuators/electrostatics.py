@@ -591,6 +591,7 @@ class FloorSolver:
     fraction ``f`` of that cell covered by the electrode (its outline moved outward by
     :attr:`EDGE_SHIFT` spacings) decides its condition: ``f = 1`` holds the voltage,
     ``0 < f < 1`` holds it through a Robin blend ``phi_i + BLEND h (1 - f) / f * E_z,i = V``
+    (``h = sqrt(dx dy)``; the constants were fitted on square cells)
     (the diagonal ``D``), ``f = 0`` is bare floor. The edge then moves continuously with the true
     outline instead of jumping by a node. The two constants were fitted once on the lattice
     problem of a straight edge (a periodic array of equal strips and gaps at 8 sub-cell offsets,
