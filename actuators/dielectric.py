@@ -40,9 +40,9 @@ from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError
 from fieldplan.physics import drag_coefficient
 
-from .electrostatics import (ElectrodeLayout, FloorSolver, Grid, SplineMaps, UnitResponses, finger_array,
-                             interdigitated, layout_from_spec, pad_array, quadrupole, RESOLUTION_SPACINGS, resolution_problems,
-                             square_field_gradient)
+from .electrostatics import (RESOLUTION_SPACINGS, ElectrodeLayout, FloorSolver, Grid, SplineMaps, UnitResponses,
+                             finger_array, interdigitated, layout_from_spec, pad_array, quadrupole,
+                             resolution_problems, square_field_gradient)
 
 __all__ = [
     "complex_permittivity",

@@ -974,7 +974,7 @@ class FloorSolver:
         """
         v, single = self._voltages(voltages)
         if self.gap_model == "insulating":
-            x, c = self._solve_insulating(v)
+            x, _ = self._solve_insulating(v)
             ez = np.zeros((len(v), self.grid.ny * self.grid.nx))
             ez[:, self._act] = x
             return self.potential_of(ez.reshape((len(v),) + self.grid.shape)[0] if single else ez, v[0] if single else v)

@@ -32,7 +32,6 @@ from scipy import integrate
 from shapely.geometry import Point, box
 
 from fieldplan import ActuatorError
-from actuators import electrostatics as es
 from actuators.dielectric import ElectrodeArray, ResolutionWarning
 from actuators.electrostatics import (ElectrodeLayout, FloorSolver, Grid, UnitResponses, finger_array, pad_array,
                                       resolution_problems, square_field_gradient)
@@ -82,7 +81,8 @@ def test_exact_solution_limits():
         assert np.sqrt(exact_ide(0.3 * L, z, w, g, V)[0]) == pytest.approx(far, rel=1e-5)
         # E_z on the electrode at z -> 0+ is |E| (the field is normal there); the edge singularity is
         # integrable (1/sqrt), so quad handles it with the edge as an end point.
-        q, _ = integrate.quad(lambda x: np.sqrt(exact_ide(x, 1e-9 * L, w, g, V)[0]), -w / 2, w / 2, limit=400)
+        q, _ = integrate.quad(lambda x, L=L, w=w, g=g: np.sqrt(exact_ide(x, 1e-9 * L, w, g, V)[0]), -w / 2, w / 2,
+                              limit=400)
         assert q == pytest.approx(V * ss.ellipk(1 - m) / ss.ellipk(m), rel=2e-3)
 
 
@@ -123,7 +123,7 @@ def test_insulating_gaps_match_exact_periodic_solution(w, g):
     Measured errors (this grid): |E|^2 at z = w <= 1.8e-3, d|E|^2/dz <= 3.6e-3, far field (z = 3L) <= 1.2e-3.
     """
     L = w + g
-    n = int(round(2 * L / min(w, g) * 8))
+    n = round(2 * L / min(w, g) * 8)
     for z, tol in ((w, 5e-3), (3 * L, 3e-3)):
         e2, dx, dz = _errors(w, g, n, z)
         assert e2 < tol and dz < 2 * tol and dx < 2 * tol, (z, e2, dx, dz)
@@ -163,7 +163,7 @@ def test_second_order_convergence_on_refinement():
     """
     w, g = CASES[1]
     L = w + g
-    errs = np.array([_errors(w, g, int(round(2 * L / w * per)), w) for per in (4, 8, 16)])
+    errs = np.array([_errors(w, g, round(2 * L / w * per), w) for per in (4, 8, 16)])
     orders = np.log2(errs[:-1] / errs[1:])
     assert np.all(orders[:, [0, 2]] > 1.7), orders
     assert errs[0, 0] < 1.5e-2            # and 4 spacings across a feature already give ~1 % (the warning level)
@@ -178,7 +178,7 @@ def test_charge_per_electrode_matches_capacitance_formula():
     for w, g in CASES:
         L = w + g
         m = np.cos(np.pi * w / (2 * L)) ** 2
-        u, _ = _periodic(w, g, int(round(2 * L / min(w, g) * 16)))
+        u, _ = _periodic(w, g, round(2 * L / min(w, g) * 16))
         ez = 0.5 * (u.normal_field[0] - u.normal_field[1])[0]     # +-1/2 V: 1 V between neighbours; one row
         q = np.sum(ez[ez > 0]) * u.grid.dx                          # the positive strip's charge / eps
         assert q == pytest.approx(ss.ellipk(1 - m) / ss.ellipk(m), rel=3e-3)
@@ -255,13 +255,13 @@ def test_window_margin_does_not_matter_in_free_space():
     maps = []
     for margin in (10e-6, 40e-6):
         x0, y0, x1, y1 = lay.bounds
-        nx = int(round((x1 - x0 + 2 * margin) / h)) + 1
-        ny = int(round((y1 - y0 + 2 * margin) / h)) + 1
+        nx = round((x1 - x0 + 2 * margin) / h) + 1
+        ny = round((y1 - y0 + 2 * margin) / h) + 1
         grid = Grid(x0 - margin, y0 - margin, h, h, nx, ny)
         u = UnitResponses(lay, grid, cache_dir=False)
-        i0 = int(round((margin - 10e-6) / h))
-        crop = (slice(None), slice(i0, i0 + int(round((y1 - y0 + 20e-6) / h)) + 1),
-                slice(i0, i0 + int(round((x1 - x0 + 20e-6) / h)) + 1))
+        i0 = round((margin - 10e-6) / h)
+        crop = (slice(None), slice(i0, i0 + round((y1 - y0 + 20e-6) / h) + 1),
+                slice(i0, i0 + round((x1 - x0 + 20e-6) / h) + 1))
         # 4 um (2 spacings: the short-range spectral remainder is used) and 10 um (sampled kernel only)
         maps.append([np.concatenate(u.pattern([1.0, -1.0], z))[crop] for z in (4e-6, 10e-6)])
     # measured: 6e-8 at 10 um; 3e-5 of the largest value at 4 um (images of the short-range remainder)
