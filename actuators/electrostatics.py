@@ -19,10 +19,10 @@ The chain, each step a plain function or small class over arrays:
    disc and square plates give their published capacitances to 3e-4 at 24 spacings across.
    **Kept for comparison (``gap_model="linear"``):** electrode nodes hold their voltage and the
    bare floor solves the 2-D Laplace equation in the floor plane (a linear ramp across a straight
-   gap, 0 V on the window edge, edges snapped to nodes). That is not the physics of an insulating
-   gap: it overestimates the far-field ``|E|^2`` of an interdigitated array by a factor that does
-   not fade with height - 1.13 for equal strips and gaps, 1.44 for strips a third of the gap,
-   1.03 for strips three times the gap - and near the floor by more.
+   gap, 0 V on the window edge; Shortley-Weller stencils at the outlines). That is not the physics
+   of an insulating gap: it overestimates the far-field ``|E|^2`` of an interdigitated array by a
+   factor that does not fade with height - 1.13 for equal strips and gaps, 1.44 for strips a third
+   of the gap, 1.03 for strips three times the gap - and near the floor by more.
 3. :func:`half_space_fields` - the potential above the floor from the half-space Fourier solution
    of Laplace's equation with Dirichlet data on ``z = 0``: ``phi_hat(k, z) = phi_hat_0(k) exp(-|k| z)``,
    on a zero-padded grid (FFT), with gradient and Hessian by spectral differentiation (linear
@@ -585,7 +585,9 @@ class FloorSolver:
         floor plane (a linear ramp across a straight gap) with 0 V on the window edge. Against the
         exact periodic solution this overestimates the far-field ``|E|^2`` of an interdigitated
         array by a factor that does not fade with height (about 1.13 for equal widths and gaps).
-        Edges snap to nodes (first-order error in the edge position).
+        Nodes inside an outline hold its voltage; the free nodes next to it use the distance to the
+        outline along the grid line (Shortley-Weller stencil), so edges between nodes keep the
+        error second order.
 
     Partial cells (insulating model). Each node owns the cell of one spacing around it; the
     fraction ``f`` of that cell covered by the electrode (its outline moved outward by
@@ -723,6 +725,7 @@ class FloorSolver:
         X, Y = np.meshgrid(g.x, g.y)
         labels = np.full(g.shape, -1, dtype=np.int32)
         count = np.zeros(g.shape, dtype=np.int32)
+        self._shapes = []
         # A node exactly on an electrode edge belongs to it; the tiny buffer absorbs float round-off.
         eps = 1e-6 * min(g.dx, g.dy)
         x0, x1, y0, y1 = g.extent
@@ -740,6 +743,7 @@ class FloorSolver:
                 shape = shapely.unary_union([shapely.affinity.translate(shape, a * px, b * py)
                                              for a in (-1, 0, 1) for b in (-1, 0, 1)])
             shapely.prepare(shape)
+            self._shapes.append(shape)
             m = shapely.intersects_xy(shape, X, Y)
             if not m.any():
                 raise ActuatorError(
@@ -767,7 +771,12 @@ class FloorSolver:
         return labels
 
     def assemble(self):
-        """Build the gap Laplacian :attr:`matrix` (free x free nodes) and :attr:`coupling` (free nodes x K)."""
+        """Build the gap Laplacian :attr:`matrix` (free x free nodes) and :attr:`coupling` (free nodes x K).
+
+        Linear model. Next to an electrode the 5-point stencil uses the true distance to the
+        electrode's outline along the grid line (Shortley-Weller: arms ``h+`` and ``h-``, weights
+        ``2 / (h+- (h+ + h-))``), so the edge sits where the outline is, not on the nearest node.
+        """
         g = self.grid
         ny, nx = g.shape
         lab = self.labels.ravel()
@@ -778,28 +787,48 @@ class FloorSolver:
         jj, ii = np.divmod(np.arange(lab.size), nx)
         rows, cols, vals = [], [], []
         brow, bcol, bval = [], [], []
-        wx, wy = 1.0 / g.dx**2, 1.0 / g.dy**2
         fnode = np.flatnonzero(free)
         fi, fj = ii[fnode], jj[fnode]
-        diag = np.full(nfree, -2.0 * (wx + wy))
-        for di, dj, w in ((1, 0, wx), (-1, 0, wx), (0, 1, wy), (0, -1, wy)):
-            ni, nj = fi + di, fj + dj
-            if g.periodic:
-                ni, nj = ni % nx, nj % ny
-                inside = np.ones(nfree, dtype=bool)
-            else:
-                # Outside the window the floor is at 0 V: the neighbour contributes nothing.
-                inside = (ni >= 0) & (ni < nx) & (nj >= 0) & (nj < ny)
-            nb = np.where(inside, nj * nx + ni, 0)
-            nb_lab = np.where(inside, lab[nb], -2)
-            unk = inside & (nb_lab == -1)
-            rows.append(index[fnode[unk]])
-            cols.append(index[nb[unk]])
-            vals.append(np.full(int(unk.sum()), w))
-            ele = inside & (nb_lab >= 0)
-            brow.append(index[fnode[ele]])
-            bcol.append(nb_lab[ele])
-            bval.append(np.full(int(ele.sum()), w))
+        px, py = g.xmin + fi * g.dx, g.ymin + fj * g.dy
+        diag = np.zeros(nfree)
+        for axis, step in ((0, g.dx), (1, g.dy)):
+            arms, kinds = [], []
+            for sign in (1, -1):
+                di, dj = (sign, 0) if axis == 0 else (0, sign)
+                ni, nj = fi + di, fj + dj
+                if g.periodic:
+                    ni, nj = ni % nx, nj % ny
+                    inside = np.ones(nfree, dtype=bool)
+                else:
+                    # Outside the window the floor is at 0 V: the neighbour contributes nothing.
+                    inside = (ni >= 0) & (ni < nx) & (nj >= 0) & (nj < ny)
+                nb = np.where(inside, nj * nx + ni, 0)
+                nb_lab = np.where(inside, lab[nb], -2)
+                arm = np.full(nfree, step)
+                for k in np.unique(nb_lab[nb_lab >= 0]):
+                    sel = np.flatnonzero(nb_lab == k)
+                    qx, qy = px[sel] + di * g.dx, py[sel] + dj * g.dy
+                    seg = shapely.linestrings(np.stack([np.column_stack([px[sel], py[sel]]),
+                                                        np.column_stack([qx, qy])], axis=1))
+                    cut = shapely.intersection(seg, self._shapes[k])
+                    d = shapely.distance(shapely.points(px[sel], py[sel]), cut)
+                    d = np.where(np.isfinite(d), d, step)
+                    # the outline never sits on a free node (that node would be an electrode node)
+                    arm[sel] = np.clip(d, 1e-3 * step, step)
+                arms.append(arm)
+                kinds.append((inside, nb, nb_lab))
+            total = arms[0] + arms[1]
+            for arm, (inside, nb, nb_lab) in zip(arms, kinds):
+                w = 2.0 / (arm * total)
+                diag -= w
+                unk = inside & (nb_lab == -1)
+                rows.append(index[fnode[unk]])
+                cols.append(index[nb[unk]])
+                vals.append(w[unk])
+                ele = inside & (nb_lab >= 0)
+                brow.append(index[fnode[ele]])
+                bcol.append(nb_lab[ele])
+                bval.append(w[ele])
         rows.append(np.arange(nfree))
         cols.append(np.arange(nfree))
         vals.append(diag)
@@ -977,7 +1006,8 @@ class FloorSolver:
             x, _ = self._solve_insulating(v)
             ez = np.zeros((len(v), self.grid.ny * self.grid.nx))
             ez[:, self._act] = x
-            return self.potential_of(ez.reshape((len(v),) + self.grid.shape)[0] if single else ez, v[0] if single else v)
+            phi = self.potential_of(ez.reshape((len(v),) + self.grid.shape), v)
+            return phi[0] if single else phi
         if self._b is None:
             self._factorise()
         lab = self.labels.ravel()

@@ -312,3 +312,37 @@ def test_resolution_warning_for_narrow_features():
     g = Grid(-20e-6, -20e-6, 2e-6, 2e-6, 25, 125)
     assert resolution_problems(bar, g) == []
     assert resolution_problems(bar, g, spacings=4.5) != []
+
+
+def test_linear_gap_option_edges_between_nodes_converge_at_second_order():
+    """Linear-gap option: outlines between nodes (Shortley-Weller arms), second order on refinement.
+
+    [derived] CHECKS.md closed form for a gap of width 2g with a linear potential,
+    E_x(x, z) = (V / (2 pi g)) [arctan((g - x) / z) + arctan((g + x) / z)], summed over the periodic
+    images of the gaps with alternating sign (as in tests/test_dielectric.py). The layout is shifted
+    by 0.1 ... 0.9 of a cell; the worst error over shifts and z = g/2, g falls 8.7e-3 -> 1.1e-3 -> 2.7e-4
+    for 5, 10, 20 spacings per gap (node snapping: 2-4 % at 10 spacings, first order).
+    """
+    g, L, V = 10e-6, 400e-6, 2.0
+    n_img = np.arange(-20000, 20001)
+
+    def worst(nx):
+        h, out = L / nx, 0.0
+        grid = Grid.cell((-L / 2, L / 2, -L / 8, L / 8), nx, 8)
+        i = nx // 2
+        for f in (0.1, 0.3, 0.5, 0.7, 0.9):
+            s0 = f * h
+            lay = ElectrodeLayout({"A": box(g + s0, -L / 8, L / 2 - g + s0, L / 8),
+                                   "B": box(-L / 2 + g + s0, -L / 8, -g + s0, L / 8)})
+            u = UnitResponses(lay, grid, cache_dir=False, gap_model="linear")
+            xc = n_img * L / 2 + s0
+            for z in (g / 2, g):
+                grad, _ = u.pattern([V / 2, -V / 2], z)
+                want = np.sum((-1.0) ** n_img * V / (2 * np.pi * g)
+                              * (np.arctan((g - (grid.x[i] - xc)) / z) + np.arctan((g + (grid.x[i] - xc)) / z)))
+                out = max(out, abs(abs(grad[0, 4, i]) / abs(want) - 1))
+        return out
+
+    e = np.array([worst(n) for n in (100, 200, 400)])
+    assert np.all(np.log2(e[:-1] / e[1:]) > 1.7), e
+    assert e[1] < 2e-3
