@@ -608,8 +608,12 @@ PLOT_NAMES = ("workspace", "timeline", "inputs")
 
 #: Units of the PlanSettings fields (the rest are plain numbers, integers or booleans).
 PLANNER_UNITS = {"period": "s", "tolerance": "m", "time_limit": "s", "clearance": "m",
-                 "route_resolution": "m", "max_trust": "m", "max_step": "m", "trust_region": "m", "goal_hold": "s",
+                 "route_resolution": "m", "table_resolution": "m", "max_trust": "m", "max_step": "m", "trust_region": "m", "goal_hold": "s",
                  "step_time_limit": "s", "separation": "m", "duration": "s", "max_time": "s"}
+
+# Planner settings with a fixed set of values, and whole numbers that may be left to the planner.
+PLANNER_CHOICES = {"method": ("horizon", "step"), "balance": ("time", "squared"), "backend": ("osqp", "cvxpy")}
+PLANNER_OPTIONAL_INTS = ("horizon",)
 
 # Fields of PlanSettings from the API note, used until fieldplan.plan exists.
 _PLANNER_FALLBACK = {"period": None, "horizon": 1, "tolerance": None, "time_limit": None, "clearance": None,
@@ -1701,6 +1705,10 @@ def _planner(ctx, spec):
             out[k] = None
         elif k in PLANNER_UNITS:
             out[k] = _quantity(ctx, p, v, PLANNER_UNITS[k], positive=True)
+        elif k in PLANNER_CHOICES:
+            out[k] = _choice(ctx, p, v, PLANNER_CHOICES[k])
+        elif k in PLANNER_OPTIONAL_INTS:
+            out[k] = _int(ctx, p, v, minimum=1)
         elif isinstance(default, bool):
             out[k] = _bool(ctx, p, v)
         elif isinstance(default, int) and not isinstance(default, bool):

@@ -59,6 +59,8 @@ __all__ = ["Controller"]
 DEAD_ZONE = 0.3
 #: Hardware slots (time steps, or minimum dwells) an automatic time-share period holds at least.
 MIX_SLOTS = 8
+#: Largest route grid (cells), so a very fine route_resolution is an error, not hours and gigabytes.
+MAX_GRID_CELLS = 1_000_000
 
 
 class Controller(ControllerBase):
@@ -126,6 +128,13 @@ class Controller(ControllerBase):
     def _build_maps(self, p):
         s = self.settings
         res = float(s.route_resolution) if s.route_resolution else default_resolution(self.workspace)
+        xmin, ymin, xmax, ymax = self.workspace.bounds
+        cells = ((xmax - xmin) / res) * ((ymax - ymin) / res)
+        if cells > MAX_GRID_CELLS:
+            raise WorkspaceError(
+                f"route_resolution {format_quantity(res, 'm')} makes a grid of {cells:.3g} cells over the workspace, "
+                f"more than the {MAX_GRID_CELLS:.0e} the planner allows (memory and time): use a coarser resolution, "
+                f"at least {format_quantity(np.sqrt((xmax - xmin) * (ymax - ymin) / MAX_GRID_CELLS), 'm')}.")
         if s.assign_goals and self.n > 1:
             self._assign(p, res)
         maps = []
