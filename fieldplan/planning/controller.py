@@ -397,23 +397,24 @@ class Controller(ControllerBase):
         H, L = self.horizon, self.length_unit
         lower, upper, rows, rhs = self._bounds()
         delta0, _ = self._trust_and_speed(p)
-        # An exact penalty must outweigh what a body gains by cutting a corner: the cost's gradient
-        # per length unit grows with the time-to-go (in periods), so the weight does too.
-        J_now, _ = self._time_to_go(p[None])
+        J_now, G_now = self._time_to_go(p[None])
         J_now = np.maximum(J_now[0] - self._dead, 0.0)
-        # Each body's squared time-to-go is weighed by 1 / (its own time-to-go now), so the cost's
-        # gradient is every body's time-to-go in seconds alike: the plan lowers the *sum* of the
-        # times (bodies far from home do not buy progress by pushing the others away), while a body
-        # near its goal sits in a steep quadratic that holds it there.
+        # Balance "time": each body's squared time-to-go is weighed by 1 / (its own time-to-go now),
+        # so the cost's gradient is every body's time-to-go in seconds alike: the plan lowers the
+        # *sum* of the times, and a body near its goal sits in a steep quadratic that holds it there.
         if s.balance == "time":
             self._body_w = self.period / np.maximum(J_now, self.period)
         else:
             self._body_w = np.ones(self.n)
-        gmax = float(np.max(self._body_w * J_now)) / self.period
-        self._rho = s.slack_weight * (1.0 + gmax)
-        # The QP sees the cost divided by the same factor (its gradients then are of order one,
-        # which OSQP converges on much faster); acceptance compares unscaled true costs.
-        self._qp_scale = 1.0 / (1.0 + gmax)
+        # An exact penalty must outweigh what a body gains by cutting a corner, i.e. the cost's
+        # gradient (per length unit): slack_weight / 100 times the largest one now, so 10 times at
+        # the default. The QP sees the cost divided by that gradient (order one), which OSQP
+        # converges on far faster than on weights spanning five decades; acceptance compares the
+        # unscaled true costs.
+        grad = float(np.max(self._body_w * J_now * np.linalg.norm(G_now[0], axis=1))) * L / self.period**2
+        grad = max(grad, 1e-12)
+        self._rho = s.slack_weight / 100.0 * grad
+        self._qp_scale = 1.0 / grad
         # -- nominal: the best of the candidate sequences, judged by the true cost
         cands = [self._W, np.tile(self._idle_rate, (H, 1))]
         names = ["shifted", "idle"]

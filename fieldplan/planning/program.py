@@ -223,8 +223,8 @@ class HorizonProgram:
         when the residual is usable).
     """
 
-    def __init__(self, n_bodies, n_fields, horizon, *, n_rate_rows=0, timeshare=False, slew=False, eps=1e-4,
-                 max_iter=4000):
+    def __init__(self, n_bodies, n_fields, horizon, *, n_rate_rows=0, timeshare=False, slew=False, eps=1e-3,
+                 max_iter=1000):
         for name, v in (("n_bodies", n_bodies), ("n_fields", n_fields), ("horizon", horizon)):
             if not (isinstance(v, (int, np.integer)) and v >= 1):
                 raise FieldplanError(f"HorizonProgram {name} must be an integer >= 1, got {v!r}.")

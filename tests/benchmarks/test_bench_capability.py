@@ -153,6 +153,13 @@ def _reason(message):
     return head[:30]
 
 
+def _trace(case, N, label, run):
+    """One line per trial as it ends (long runs show their progress)."""
+    ok, ttg, wall, why, broke = run
+    print(f"  [{case['name'][:24]}] N={N} {label}: {'ok' if ok else 'fail'} t_goal={ttg:.4g} s wall={wall:.3g} s"
+          f"{'' if ok else ' (' + str(why) + ')'}", flush=True)
+
+
 def run_case(case, seed=0):
     """Rows per N: {N, frac, runs: {controller: [(success, time_to_goal, wall, why, broke_limits)]}}."""
     ws, act = case["workspace"], case["actuator"]
@@ -180,6 +187,7 @@ def run_case(case, seed=0):
                     assert res.metrics["all_reached"] and np.isfinite(res.time_to_goal), res.message
                 runs[label].append((ok, res.time_to_goal if ok else np.nan, wall, None if ok else _reason(res.message),
                                     False))
+                _trace(case, N, label, runs[label][-1])
             for label, fn in PEERS.items():
                 tic = time.perf_counter()
                 out = run_peer(fn, act, bodies, ws, starts, goals, period=period, duration=duration,
@@ -187,6 +195,7 @@ def run_case(case, seed=0):
                                limits=case["limits"])
                 runs[label].append((out["success"], out["time_to_goal"], time.perf_counter() - tic,
                                     None if out["success"] else out["message"], bool(out["violations"])))
+                _trace(case, N, label, runs[label][-1])
         rows.append({"N": N, "frac": float(frac), "runs": runs})
     return rows
 
