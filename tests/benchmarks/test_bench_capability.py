@@ -8,7 +8,7 @@ held, by :func:`fieldplan.steer.steerable`) run closed loop on the same simulato
 tracking noise, contacts), with the same period and time limit, by:
 
 - **fieldplan** - :func:`fieldplan.live.closed_loop` with the horizon planner, under the declared
-  hardware limits, and again with no limits;
+  hardware limits (and, with ``FIELDPLAN_FULL=1``, again with no limits);
 - **greedy** - the one-step primitive choice (:func:`peers.greedy_step`);
 - **least squares** - per-period bounded least squares (:func:`peers.least_squares_step`).
 
@@ -176,7 +176,8 @@ def run_case(case, seed=0):
             ctrl = Controller(act, bodies, ws, goals, limits=case["limits"], settings=case["settings"])
             ctrl.prepare(starts)
             period, duration = ctrl.period, ctrl.time_limit
-            for label, limits in (("fieldplan", case["limits"]), ("fieldplan, no limits", None)):
+            variants = [("fieldplan", case["limits"])] + ([("fieldplan, no limits", None)] if FULL else [])
+            for label, limits in variants:
                 tic = time.perf_counter()
                 res = closed_loop(act, act, bodies, ws, starts, goals, limits=limits, settings=case["settings"],
                                   rng=s, brownian=True, tracking_noise=case["tracking"], duration=duration)
