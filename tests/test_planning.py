@@ -245,3 +245,19 @@ def test_a_route_grid_too_fine_is_a_clear_error():
     ctrl = Controller(ACT4, [BEAD], WS, [[7e-4, 6e-4]], settings=PlanSettings(route_resolution=1e-7))
     with pytest.raises(ValueError, match="route_resolution .* coarser"):
         ctrl.prepare([[3e-4, 3e-4]])
+
+
+def test_slew_is_a_rate_ramps_within_a_period():
+    # A slew limit bounds how fast a channel changes, not how much per control period: with 0.1 s
+    # hardware steps a full swing of 2 units at 0.25 /s takes 8 s, well inside one period, so the
+    # limited plan is about as fast as the free one - and every step of its ramps keeps the rate.
+    free = plan(ACT4, [BEAD], WS, [[3e-4, 3e-4]], [[7e-4, 6e-4]],
+                limits=HardwareLimits(time_step=0.1))
+    lim = HardwareLimits({c.name: ChannelLimit(slew_rate=0.25) for c in ACT4.channels}, time_step=0.1)
+    slow = plan(ACT4, [BEAD], WS, [[3e-4, 3e-4]], [[7e-4, 6e-4]], limits=lim)
+    assert free.success and slow.success, slow.message
+    assert slow.schedule.duration <= 1.3 * free.schedule.duration
+    slow.schedule.check(lim)
+    assert "ramp" in set(slow.schedule.labels)
+    dv = np.abs(np.diff(np.asarray(slow.schedule.values), axis=0))
+    assert dv.max() <= 0.25 * 0.1 * (1 + 1e-9)

@@ -43,6 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
+from ..control import _pattern      # one pattern builder for both programs (fixed sparsity, CSC order)
 from ..errors import FieldplanError
 
 __all__ = ["HorizonProgram", "HorizonData", "HorizonSolution"]
@@ -162,18 +163,6 @@ class HorizonSolution:
     solver_time: float
     iterations: int
     info: dict = field(default_factory=dict)
-
-
-def _pattern(rows, cols, shape):
-    """CSC pattern with every entry stored and the permutation from insertion order to CSC order."""
-    rows = np.asarray(rows, dtype=np.int64)
-    cols = np.asarray(cols, dtype=np.int64)
-    ids = np.arange(1, len(rows) + 1, dtype=float)
-    M = sp.csc_matrix((ids, (rows, cols)), shape=shape)
-    M.sort_indices()
-    if M.nnz != len(rows):
-        raise FieldplanError("internal: duplicate entries in the horizon program pattern.")
-    return M, (M.data - 1).astype(np.int64)
 
 
 class _Blocks:
