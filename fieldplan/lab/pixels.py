@@ -44,7 +44,7 @@ class PixelMap:
     >>> pm([[2.0, 4.0]]) * 1e6
     array([[11.,  2.]])
     >>> marks = PixelMap.from_marks([[0, 0], [100, 0]], [[0, 0], [0, 5e-5]])   # 90 degrees, 0.5 um/px
-    >>> [round(float(v) * 1e6, 6) for v in marks([[0, 10]])[0]]
+    >>> [round(float(v) * 1e6, 6) + 0.0 for v in marks([[0, 10]])[0]]
     [-5.0, 0.0]
     """
 
