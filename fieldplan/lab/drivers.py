@@ -39,6 +39,9 @@ import numpy as np
 from ..actuator import Segment
 from ..errors import FieldplanError, LimitError
 from ..schedule import HardwareLimits, Schedule
+# The tracking reader's own naming of unnamed settings (imported here, not on the first segment:
+# importing scipy.signal mid-play would delay that segment by seconds).
+from ..tracking import _setting_name
 from . import require
 from .inputlog import write_log
 
@@ -384,10 +387,9 @@ class VisaTransport:
         return self.read()
 
     def close(self):
-        try:
-            self.inst.close()
-        finally:
-            self.rm.close()
+        # Only the instrument session: pyvisa hands every caller in a process the same resource
+        # manager per library, so closing it would cut off other instruments opened elsewhere.
+        self.inst.close()
 
 
 class SerialTransport:
@@ -422,8 +424,6 @@ class SerialTransport:
 # the base driver
 # ---------------------------------------------------------------------------------------------
 def _setting_label(channels, segment):
-    from ..tracking import _setting_name  # noqa: PLC0415 - the reader's own naming of unnamed settings
-
     lab = segment.label
     if lab and lab not in ("mix",):
         return lab
