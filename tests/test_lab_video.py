@@ -197,8 +197,8 @@ def test_calibration_from_a_synthetic_video_recovers_the_truth_fields(tmp_path):
     xy = np.full((T, 40, 2), np.nan)
     ids = np.array([int(s[1:]) for s in sim.track])
     xy[np.round(sim.time / 0.1).astype(int), ids] = sim.xy
-    # camera: 4 um/px, rotated 0.2 rad, placed so every bead is in view; fitted from three marks
-    A = PixelMap.from_scale("4 um", rotation=0.2).matrix[:, :2]
+    # camera: 5 um/px, rotated 0.2 rad, placed so every bead is in view; fitted from three marks
+    A = PixelMap.from_scale("5 um", rotation=0.2).matrix[:, :2]
     lowest = np.nanmin(np.linalg.solve(A, xy.reshape(-1, 2).T).T, axis=0)
     cam = PixelMap(np.column_stack([A, A @ (lowest - 12.0)]))
     frames_px = cam.inverse(xy.reshape(-1, 2)).reshape(xy.shape)

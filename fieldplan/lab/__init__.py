@@ -25,7 +25,10 @@ from __future__ import annotations
 
 import importlib
 
-__all__ = ["LabDependencyError", "require"]
+__all__ = ["LabDependencyError", "require", "PixelMap", "read_marks", "InputLog", "read_input_log", "track_video",
+           "tracks_from_table", "VideoTracks", "CameraObserver", "camera_observer", "open_driver", "load_profile",
+           "InstrumentProfile", "ToneGenerator", "SerialLine", "WaveformDriver", "RealTimeClock", "run_realtime",
+           "dry_run", "PlayReport", "load_for_play"]
 
 
 class LabDependencyError(ImportError):
@@ -51,3 +54,13 @@ def require(module, extra="lab", what=None):
         raise LabDependencyError(
             f"the Python package {module!r} is needed{need} but cannot be imported ({exc}); install it with "
             f"pip install 'fieldplan[{extra}]'.") from None
+
+
+# The public surface (imported after require(): the modules below use it).
+from .drivers import InstrumentProfile, SerialLine, ToneGenerator, WaveformDriver, load_profile, open_driver  # noqa: E402
+from .inputlog import InputLog, read_input_log  # noqa: E402
+from .observe import CameraObserver, camera_observer  # noqa: E402
+from .pacing import RealTimeClock, dry_run, run_realtime  # noqa: E402
+from .pixels import PixelMap, read_marks  # noqa: E402
+from .play import PlayReport, load_for_play  # noqa: E402
+from .video import VideoTracks, track_video, tracks_from_table  # noqa: E402

@@ -285,40 +285,47 @@ def link(features, search_range, *, memory=3, predictive=True, adaptive_stop=Non
 
 
 def _close_gaps(linked, search_range, memory):
-    """Join a track that ends to one that starts at most ``memory`` frames later where the first,
-    extrapolated at its end velocity, lands within ``search_range`` px of the second's start
-    (one-to-one, least total distance: ``scipy.optimize.linear_sum_assignment``)."""
-    from scipy.optimize import linear_sum_assignment  # noqa: PLC0415
-
+    """Join a track that ends to one that starts 2 to ``memory + 1`` frames later, where the first,
+    extrapolated at its end velocity (mean step over its last three steps), lands within
+    ``search_range`` px of the second's start. Pairs are taken greedily by distance, one to one
+    (gap closing as in most tracking software; common practice)."""
     if memory <= 0 or len(linked) == 0:
         return linked
     frame = linked["frame"].to_numpy(dtype=int)
     pid = linked["particle"].to_numpy(dtype=int)
     xy = linked[["x", "y"]].to_numpy(dtype=float)
-    ends, starts = {}, {}
-    for p in np.unique(pid):
-        idx = np.flatnonzero(pid == p)
-        idx = idx[np.argsort(frame[idx])]
-        tail = idx[-4:]
-        v = (xy[tail[-1]] - xy[tail[0]]) / max(frame[tail[-1]] - frame[tail[0]], 1) if len(tail) > 1 else np.zeros(2)
-        ends[p] = (frame[idx[-1]], xy[idx[-1]], v)
-        starts[p] = (frame[idx[0]], xy[idx[0]])
-    keys_e, keys_s = list(ends), list(starts)
-    big = 1e12
-    cost = np.full((len(keys_e), len(keys_s)), big)
-    for a, pe in enumerate(keys_e):
-        fe, xe, v = ends[pe]
-        for b, ps in enumerate(keys_s):
-            fs, xs = starts[ps]
-            lag = fs - fe
-            if ps != pe and 2 <= lag <= memory + 1:
-                d = float(np.linalg.norm(xe + v * lag - xs))
-                if d <= search_range:
-                    cost[a, b] = d
-    if not np.any(cost < big):
+    order = np.lexsort((frame, pid))
+    p_sorted = pid[order]
+    first = np.r_[0, np.flatnonzero(np.diff(p_sorted)) + 1]
+    last = np.r_[first[1:] - 1, len(order) - 1]
+    ids = p_sorted[first]
+    f_start, f_end = frame[order[first]], frame[order[last]]
+    x_start, x_end = xy[order[first]], xy[order[last]]
+    back = np.maximum(last - 3, first)
+    span = np.maximum(f_end - frame[order[back]], 1)
+    vel = (x_end - xy[order[back]]) / span[:, None]
+    starts_at = {}
+    for k, f in enumerate(f_start):
+        starts_at.setdefault(int(f), []).append(k)
+    pairs = []
+    for a in range(len(ids)):
+        for lag in range(2, memory + 2):
+            cand = starts_at.get(int(f_end[a]) + lag)
+            if not cand:
+                continue
+            cand = np.asarray(cand)
+            d = np.linalg.norm(x_end[a] + vel[a] * lag - x_start[cand], axis=1)
+            for b in cand[(d <= search_range) & (cand != a)]:
+                pairs.append((float(d[cand == b][0]), a, int(b)))
+    if not pairs:
         return linked
-    rows, cols = linear_sum_assignment(cost)
-    join = {keys_s[c]: keys_e[r] for r, c in zip(rows, cols) if cost[r, c] < big}
+    pairs.sort()
+    used_end, used_start, join = set(), set(), {}
+    for _, a, b in pairs:
+        if a not in used_end and b not in used_start:
+            used_end.add(a)
+            used_start.add(b)
+            join[int(ids[b])] = int(ids[a])
 
     def root(p):
         seen = set()
@@ -573,9 +580,16 @@ def track_video(video, *, settings, fps=None, times=None, pixel_size=None, pixel
             raise VideoError("give the body radius (defaults follow from it) or both diameter and search_range (px).")
         tps = trackpy_settings(1.0, 1.0, diameter=diameter, search_range=search_range, separation=separation)
     src = frames if frames is not None else read_frames(video)
-    feats = locate(src, diameter=tps["diameter"], minmass=minmass, separation=tps["separation"], count=count,
-                   progress=progress, **locate_options)
-    n_frames = int(feats["frame"].max()) + 1 if frames is not None or video is None else count_frames(video)
+    seen = [0]
+
+    def counted(it):
+        for k, item in enumerate(it):
+            seen[0] = (item[0] if isinstance(item, tuple) else k) + 1
+            yield item
+
+    feats = locate(counted(src), diameter=tps["diameter"], minmass=minmass, separation=tps["separation"],
+                   count=count, progress=progress, **locate_options)
+    n_frames = seen[0]
     linked = link(feats, tps["search_range"], memory=memory, predictive=predictive)
     comment = f"tracked by fieldplan.lab.video from {os.path.basename(os.fspath(video)) if video else 'frames'}"
     res = tracks_from_features(linked, pm, fps=fps, times=times, settings=settings, min_length=min_length, kind=kind,
