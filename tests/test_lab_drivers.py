@@ -224,3 +224,50 @@ def test_nidaqmx_writer_needs_a_driver():
         pytest.skip(f"no NI-DAQmx driver or device on this machine: {exc}")
     with WaveformDriver(COILS[:1], None, writer, 1000.0) as drv:           # pragma: no cover - needs hardware
         drv(Segment(0.0, 0.01, [0.1]))
+
+
+def test_dry_run_formats_and_logs_without_an_instrument(sim):
+    """--dry-run: the same command text, nothing opened, no acknowledgement awaited."""
+    drv = open_driver("visa://TCPIP::192.0.2.1::INSTR", CHANNELS, LIMITS, profile=sim["profile"], dry_run=True)
+    with drv:
+        drv(Segment(0.0, 0.5, [2000.0, 1.5], "low"))
+    assert drv.transport.sent[:3] == ["OUTP 0", "FREQ 1000.000", "VOLT 0.0000"]
+    assert "FREQ 2000.000" in drv.transport.sent
+    assert drv.transport.sent[-4:] == ["OUTP 0", "FREQ 1000.000", "VOLT 0.0000", "SYST:ERR?"]     # idle at the end
+
+
+def test_template_fields_are_bounded():
+    with pytest.raises(DriverError, match="width or precision above 64"):
+        SerialLine(COILS, None, None, InstrumentProfile(line="SEG {coil_1:999999999}"))
+    with pytest.raises(DriverError, match="unknown field"):
+        SerialLine(COILS, None, None, InstrumentProfile(line="SEG {coil_3}"))
+
+
+def test_limit_guard_accepts_every_schedule_that_passes_schedule_check():
+    """The per-segment re-check never refuses a schedule Schedule.check accepts (bounds, slew, dwell,
+    windowed and whole-run RMS), and refuses the first segment over a bound."""
+    from fieldplan.lab.drivers import LimitGuard
+
+    rng = np.random.default_rng(0)
+    ch = (Channel("a", "A", -2.0, 2.0), Channel("b", "V", 0.0, 5.0))
+    accepted = 0
+    for trial in range(150):
+        n = int(rng.integers(1, 12))
+        d = rng.choice([0.1, 0.2, 0.5], n)
+        v = np.column_stack([rng.uniform(-2, 2, n), rng.uniform(0, 5, n)])
+        sched = Schedule.from_segments(ch, [Segment(0, dd, vv) for dd, vv in zip(d, v)])
+        lim = HardwareLimits({"a": ChannelLimit(slew_rate=float(rng.uniform(2, 40)), rms=float(rng.uniform(0.8, 2)),
+                                                rms_window=float(rng.choice([0.3, 1.0]))),
+                              "b": ChannelLimit(upper=4.5, rms=float(rng.uniform(1, 4)))})
+        if sched.violations(lim):
+            continue
+        guard = LimitGuard(ch, lim)
+        guard.horizon = sched.duration
+        for seg in sched.segments:
+            guard.check(seg)
+            guard.accept(seg)
+        accepted += 1
+    assert accepted > 10
+    guard = LimitGuard(ch, HardwareLimits({"b": ChannelLimit(upper=4.5)}))
+    with pytest.raises(LimitError, match="'b' = 4.8 V"):
+        guard.check(Segment(0, 0.1, [0.0, 4.8]))

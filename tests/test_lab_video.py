@@ -228,3 +228,17 @@ def test_calibration_from_a_synthetic_video_recovers_the_truth_fields(tmp_path):
         print(f"  {name}: relative RMS error {100 * rel:.2f} % on the dense grid")
         assert rel < 0.08, (name, rel)
     assert os.path.getsize(out) > 1000
+
+
+def test_trackpy_hdf5_table(tmp_path):
+    """HDF5 tables are read with pandas.read_hdf, which needs PyTables (skipped without it)."""
+    pd = pytest.importorskip("pandas")
+    pytest.importorskip("tables", reason="PyTables is not installed: pandas cannot read HDF5 trackpy tables")
+    k = np.arange(20)
+    df = pd.DataFrame({"frame": np.r_[k, k], "x": np.r_[10 + k, 10 + k], "y": np.r_[20 + 0 * k, 60 + 0 * k],
+                       "particle": np.r_[0 * k, 0 * k + 1]})
+    h5 = tmp_path / "tp.h5"
+    df.to_hdf(h5, key="tracks")
+    log = write_log(tmp_path / "log.csv", [(0.0, "push", 1.0)])
+    res = tracks_from_table(h5, settings=log, fps=10, pixel_size="1 um", warn=False)
+    assert len(res.report) == 2 and all(r["frames_seen"] == 20 for r in res.report)

@@ -79,6 +79,9 @@ def check_template(text, fields, where):
                               f"{', '.join(sorted(fields))}.")
         if spec and "{" in spec:
             raise DriverError(f"{where}: template {text!r} nests fields in a format spec.")
+        if spec and any(int(d) > 64 for d in re.findall(r"\d+", spec)):
+            # A width like {value:999999999} would build a gigabyte of padding.
+            raise DriverError(f"{where}: template {text!r} asks for a width or precision above 64 in {{{name}:{spec}}}.")
     return text
 
 
@@ -246,10 +249,12 @@ class LimitGuard:
     """Checks each segment, as it is about to be sent, against ``limits`` and what was sent before.
 
     Bounds (channel bounds intersected with the declared limits), minimum dwell and time step use
-    the segment alone; the slew limit its step from the previous segment sent (from the idle input
-    for the first); windowed RMS the segments sent within the window; whole-schedule RMS the
-    running mean square of everything sent so far (stricter than the final schedule's RMS: a
-    strong start must not wait for a quiet end to become legal).
+    the segment alone; the slew limit its step from the previous segment sent (not for the first,
+    as :meth:`Schedule.check` does not check the step into a schedule); windowed RMS the window
+    ending with the segment, the instrument idle before the first segment (so nothing that passes
+    :meth:`Schedule.check` is refused); whole-run RMS the mean square of everything sent so far over
+    ``horizon`` (the planned length, set by :func:`fieldplan.lab.play.play`) or, in a live run of
+    unknown length, over the time so far (stricter than the final schedule's RMS).
     """
 
     def __init__(self, channels, limits):
@@ -263,6 +268,8 @@ class LimitGuard:
         self.recent = collections.deque()
         self.energy = np.zeros(len(self.channels))
         self.elapsed = 0.0
+        #: Planned length of the run, s (set by play); whole-run RMS is measured over it.
+        self.horizon = None
 
     def idle_segment(self, start=0.0):
         return Segment(start, 0.0, [c.idle for c in self.channels], "idle")
@@ -289,15 +296,20 @@ class LimitGuard:
             cl = self.limits.get(c.name)
             if cl.rms is None:
                 continue
+            total = self.elapsed + segment.duration
             if cl.rms_window:
-                segs = [s for s in self.recent if s.start + s.duration > segment.start - cl.rms_window] + [segment]
-                e = sum(s.values[k] ** 2 * s.duration for s in segs)
-                span = max(sum(s.duration for s in segs), 1e-300)
-                # Within the first window the mean is over the full window: the hardware was idle before.
-                r = math.sqrt(e / max(span, cl.rms_window))
+                # The window ending with this segment, exactly, idle before the first segment sent
+                # (the driver idled the instrument when it opened); earlier windows were checked before.
+                end = segment.start + segment.duration
+                lo = end - cl.rms_window
+                e = sum(s.values[k] ** 2 * max(0.0, min(s.start + s.duration, end) - max(s.start, lo))
+                        for s in [*self.recent, segment])
+                r = math.sqrt(e / cl.rms_window)
             else:
-                r = math.sqrt((self.energy[k] + vals[k] ** 2 * segment.duration) /
-                              max(self.elapsed + segment.duration, 1e-300))
+                # Whole-run RMS: what was sent so far over the planned length when it is known
+                # (play sets `horizon`), else over the time so far.
+                span = max(total, self.horizon or 0.0, 1e-300)
+                r = math.sqrt((self.energy[k] + vals[k] ** 2 * segment.duration) / span)
             if r > cl.rms * (1 + 1e-9):
                 win = f"{cl.rms_window:g} s window" if cl.rms_window else "run so far"
                 raise LimitError(f"refused before sending: channel {c.name!r} would reach RMS {r:g} {c.unit} over the "
@@ -331,9 +343,10 @@ class LimitGuard:
 # transports
 # ---------------------------------------------------------------------------------------------
 class RecordingTransport:
-    """Sends nothing: keeps every command (dry runs). ``read`` returns ``reply``."""
+    """Sends nothing: keeps every command (dry runs). ``read`` returns ``reply`` (``None``: no reply
+    is expected, so acknowledgements and error queries are not checked)."""
 
-    def __init__(self, reply=""):
+    def __init__(self, reply=None):
         self.sent = []
         self.reply = reply
 
@@ -563,6 +576,8 @@ class _MessageDriver(Driver):
         if self._ack is None:
             return ""
         reply = self.transport.read()
+        if reply is None:           # a dry run: nothing answers
+            return ""
         if not self._ack.search(reply):
             raise DriverError(f"{self.describe()}: command {text!r} answered {reply!r}, which does not match the "
                               f"expected acknowledgement {self.profile.ack!r}.")
@@ -573,6 +588,8 @@ class _MessageDriver(Driver):
             return ""
         self.transport.write(self.profile.error_query)
         reply = self.transport.read()
+        if reply is None:
+            return ""
         if self._err_ok is not None and not self._err_ok.search(reply):
             raise DriverError(f"{self.describe()}: the instrument reports an error: {self.profile.error_query!r} -> "
                               f"{reply!r}.")
@@ -878,17 +895,13 @@ def open_driver(url, channels, limits, *, profile=None, log=None, dry_run=False,
         if profile is None:
             raise DriverError(f"a {scheme} driver needs an instrument profile (--profile FILE): the commands to send.")
         prof = profile if isinstance(profile, InstrumentProfile) else load_profile(profile)
-        reply = ""
-        if dry_run:
-            # A dry run expects the acknowledgement the profile asks for, literally when it is plain text.
-            reply = re.sub(r"[\^\$]", "", prof.ack) if prof.ack else ""
         opts = {"timeout": prof.timeout, "write_termination": prof.write_termination,
                 "read_termination": prof.read_termination}
         if scheme == "visa":
             resource, _, backend = rest.partition("@")
-            tr = RecordingTransport(reply) if dry_run else VisaTransport(resource, backend=backend or None, **opts)
+            tr = RecordingTransport() if dry_run else VisaTransport(resource, backend=backend or None, **opts)
             return ToneGenerator(channels, limits, tr, prof, log=log)
-        tr = RecordingTransport(reply) if dry_run else SerialTransport(rest, baudrate=prof.baudrate, **opts)
+        tr = RecordingTransport() if dry_run else SerialTransport(rest, baudrate=prof.baudrate, **opts)
         return SerialLine(channels, limits, tr, prof, log=log)
     if scheme == "daq":
         phys = [p.strip() for p in rest.split(",") if p.strip()]

@@ -180,6 +180,8 @@ def run_realtime(controller, observe, apply, *, speed=1.0, tolerance=None, now=t
         state["t_end"] = segment.start + segment.duration
 
     res = run_live(controller, timed_observe, timed_apply, **run_live_options)
+    if state["t_end"] is not None:
+        clock.wait(state["t_end"])          # hold the last period's segments to their end too
     periods = min(len(first_send), len(obs_wall))
     lat = (np.array(first_send[:periods]) - np.array(obs_wall[:periods])) * speed
     wall = np.diff(np.array(obs_wall)) * speed

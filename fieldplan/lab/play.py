@@ -93,6 +93,7 @@ def play(schedule, driver, *, limits=None, clock=None, on_segment=None):
     clock = clock or RealTimeClock()
     sent = 0
     interrupted = False
+    driver.guard.horizon = schedule.duration
     with driver:
         try:
             segs = schedule.segments
