@@ -56,11 +56,26 @@ def require(module, extra="lab", what=None):
             f"pip install 'fieldplan[{extra}]'.") from None
 
 
-# The public surface (imported after require(): the modules below use it).
-from .drivers import InstrumentProfile, SerialLine, ToneGenerator, WaveformDriver, load_profile, open_driver  # noqa: E402
-from .inputlog import InputLog, read_input_log  # noqa: E402
-from .observe import CameraObserver, camera_observer  # noqa: E402
-from .pacing import RealTimeClock, dry_run, run_realtime  # noqa: E402
-from .pixels import PixelMap, read_marks  # noqa: E402
-from .play import PlayReport, load_for_play  # noqa: E402
-from .video import VideoTracks, track_video, tracks_from_table  # noqa: E402
+
+# The public surface, imported on first use (PEP 562): building the `fieldplan` command's parser
+# imports this package, and must not pay for scipy.signal, pandas or trackpy.
+_EXPORTS = {
+    "PixelMap": "pixels", "read_marks": "pixels", "InputLog": "inputlog", "read_input_log": "inputlog",
+    "track_video": "video", "tracks_from_table": "video", "VideoTracks": "video",
+    "CameraObserver": "observe", "camera_observer": "observe",
+    "open_driver": "drivers", "load_profile": "drivers", "InstrumentProfile": "drivers",
+    "ToneGenerator": "drivers", "SerialLine": "drivers", "WaveformDriver": "drivers",
+    "RealTimeClock": "pacing", "run_realtime": "pacing", "dry_run": "pacing",
+    "PlayReport": "play", "load_for_play": "play",
+}
+
+
+def __getattr__(name):
+    if name in _EXPORTS:
+        mod = importlib.import_module(f".{_EXPORTS[name]}", __name__)
+        return getattr(mod, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(list(globals()) + list(_EXPORTS))
