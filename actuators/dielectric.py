@@ -19,7 +19,8 @@ which can levitate a particle under negative DEP, is not integrated); the partic
 compared with the field's length scale (dipole approximation; higher multipoles matter at field
 nulls); electrothermal and AC-electro-osmotic flows, electrode polarisation and the induced
 change of the field by the particle itself are not modelled; the bare floor between electrodes
-follows the gap approximation stated in :mod:`actuators.electrostatics`.
+is an insulator (the exact mixed problem, :mod:`actuators.electrostatics`; ``gap_model="linear"``
+selects the earlier linear-gap approximation).
 
 Drive convention: every electrode carries ``V_k cos(omega t)`` with the same frequency; a
 channel value is the signed **peak** amplitude ``V_k`` (negative = antiphase), so
@@ -39,8 +40,9 @@ from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError
 from fieldplan.physics import drag_coefficient
 
-from .electrostatics import (ElectrodeLayout, Grid, SplineMaps, UnitResponses, finger_array, interdigitated,
-                             layout_from_spec, pad_array, quadrupole, square_field_gradient)
+from .electrostatics import (RESOLUTION_SPACINGS, ElectrodeLayout, FloorSolver, Grid, SplineMaps, UnitResponses,
+                             finger_array, interdigitated, layout_from_spec, pad_array, quadrupole,
+                             resolution_problems, square_field_gradient)
 
 __all__ = [
     "complex_permittivity",
@@ -90,7 +92,8 @@ class FieldLimitWarning(DielectrophoresisWarning):
 
 
 class ResolutionWarning(DielectrophoresisWarning):
-    """The field grid is too coarse for the height where the field is evaluated."""
+    """The field grid is too coarse for the height where the field is evaluated, or for the
+    narrowest electrode or gap of the layout."""
 
 
 # ------------------------------------------------------------------------------------------------
@@ -357,9 +360,15 @@ class ElectrodeArray(Actuator):
         Nodes along the longer side of the default grid (the grid spacing should stay below half
         the lowest body height; a ResolutionWarning says when it does not).
     margin : float or str, optional
-        Bare floor around the electrodes to the 0 V edge of the default grid, m.
+        Bare floor around the electrodes inside the default grid window (where fields are
+        defined), m; with ``gap_model="linear"`` the window edge is held at 0 V.
     pad : int
-        FFT zero-padding factor (see :func:`actuators.electrostatics.half_space_fields`).
+        FFT zero-padding factor of the linear gap model (see
+        :func:`actuators.electrostatics.half_space_fields`); the insulating model needs none.
+    gap_model : {"insulating", "linear"}
+        Bare floor between electrodes: an insulator (no normal field, the exact mixed problem;
+        default) or the earlier linear-gap approximation, kept for comparison
+        (:class:`actuators.electrostatics.FloorSolver`).
     cache_dir : str, Path, None or False
         Disk cache of unit responses; None uses ``$FIELDPLAN_CACHE`` if set.
     field_limit : float or None
@@ -395,7 +404,7 @@ class ElectrodeArray(Actuator):
     def __init__(self, layout, frequencies, *, voltage_limit=5.0, patterns=None, grid=None, grid_points=128,
                  margin=None, pad=1, cache_dir=None, field_limit=1e6, heating_limit=1.0,
                  thermal_conductivity=WATER_THERMAL_CONDUCTIVITY, electrolysis_frequency=1e4,
-                 neighbour_factor=1.2):
+                 neighbour_factor=1.2, gap_model="insulating"):
         if not isinstance(layout, ElectrodeLayout):
             if isinstance(layout, dict) and len(layout) == 1 and next(iter(layout)) in (
                     "pad_array", "interdigitated", "finger_array", "quadrupole", "electrodes"):
@@ -419,6 +428,16 @@ class ElectrodeArray(Actuator):
         elif not isinstance(grid, Grid):
             raise ActuatorError(f"grid must be an actuators.electrostatics.Grid, got {type(grid).__name__}.")
         self.grid = grid
+        if gap_model not in FloorSolver.GAP_MODELS:
+            raise ActuatorError(f"gap_model must be one of {list(FloorSolver.GAP_MODELS)}, got {gap_model!r}.")
+        self.gap_model = gap_model
+        problems = resolution_problems(layout, grid)
+        if problems:
+            warnings.warn(
+                f"electrode grid spacing {max(grid.dx, grid.dy) * 1e6:.3g} um is coarse for the layout: "
+                f"{'; '.join(problems)}. With fewer than {RESOLUTION_SPACINGS} spacings across a feature, "
+                "|E|^2 at a height of its width is off by more than about 1 %; use more grid_points.",
+                ResolutionWarning, stacklevel=2)
         self.cache_dir = cache_dir
         self.field_limit = None if field_limit is None else _si(field_limit, "V/m", "field_limit")
         self.heating_limit = None if heating_limit is None else float(heating_limit)
@@ -472,7 +491,8 @@ class ElectrodeArray(Actuator):
         return out
 
     def _init_caches(self):
-        self._units = UnitResponses(self.layout, self.grid, self.pad, self.cache_dir)
+        self._units = UnitResponses(self.layout, self.grid, self.pad, self.cache_dir,
+                                    getattr(self, "gap_model", "insulating"))
         self._splines = collections.OrderedDict()    # (height, voltage bytes) -> (SplineMaps, max |E_rms|), LRU
         self._stacks = {}                            # height -> stacked SplineMaps of all patterns
         self._views = {}                             # (height, pattern bytes) -> (view into a stack, max |E_rms|)
@@ -502,6 +522,10 @@ class ElectrodeArray(Actuator):
         return (f"ElectrodeArray: {len(self.layout)} electrodes, {len(self.frequencies)} frequencies "
                 f"({', '.join(_freq_label(f) for f in self.frequencies)}), |V| <= {self.voltage_limit:g} V, "
                 f"{len(self.primitives())} primitives")
+
+    def outlines(self):
+        """Electrode shapes on the floor (shapely polygons, m), drawn under the run figures."""
+        return self.layout.polygons
 
     def primitives(self):
         """Every voltage pattern at every allowed frequency, named ``<pattern>@<frequency>``."""

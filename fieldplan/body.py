@@ -8,7 +8,7 @@ import numpy as np
 
 from .errors import FieldplanError
 
-__all__ = ["Body", "Shell", "DEFAULT_GAP"]
+__all__ = ["Body", "Shell", "DEFAULT_GAP", "check_positions", "check_bodies"]
 
 #: Default gap between a sedimented body's surface and the floor, m. Common practice, from memory:
 #: a colloid resting on glass in water floats on its electrostatic double layer (Debye length
@@ -178,3 +178,122 @@ class Body:
     def is_dielectric(self):
         """True if the body has homogeneous or shell dielectric properties."""
         return self.shell is not None or self.permittivity is not None
+
+
+# -- argument checks shared by the public API (plan, closed_loop, Workspace, ...) ----------------
+def check_positions(xy, name="positions", n=None, error=FieldplanError):
+    """Validate planar positions given to the API; returns a float array (n, 2), m.
+
+    The API's counterpart of the scenario loader's checks: a non-numeric entry, a ragged list, a
+    wrong shape, a count that does not match or a non-finite value raises ``error`` naming the
+    argument, never a bare ``ValueError`` from numpy.
+
+    Parameters
+    ----------
+    xy : array_like, shape (n, 2) or (2,)
+        Positions in metres (plain numbers; unit strings belong in scenario files).
+    name : str
+        The argument's name, used in the message (``"starts"``, ``"goals"``, ``"xy"``).
+    n : int, optional
+        Required number of positions (e.g. one per body).
+    error : type
+        Exception class raised, a :class:`~fieldplan.errors.FieldplanError` subclass
+        (``WorkspaceError`` for a workspace's methods).
+
+    Returns
+    -------
+    ndarray, shape (n, 2)
+
+    Examples
+    --------
+    >>> check_positions([1e-4, 2e-4], "start").tolist()
+    [[0.0001, 0.0002]]
+    >>> check_positions([["a", 0]], "goals")
+    Traceback (most recent call last):
+    ...
+    fieldplan.errors.FieldplanError: goals must be numbers in metres, shape (n, 2); got [['a', 0]] (entry 'a' is a str). Convert unit strings first, e.g. fieldplan.to_si('150 um', 'm').
+    """
+    def fail(why, hint=""):
+        text = repr(xy)
+        text = text if len(text) <= 120 else text[:117] + "..."
+        raise error(f"{name} must be numbers in metres, shape (n, 2); got {text} ({why}){hint}.")
+
+    strings = ". Convert unit strings first, e.g. fieldplan.to_si('150 um', 'm')"
+    if isinstance(xy, (str, bytes)) or xy is None:
+        fail(f"a {type(xy).__name__}, not an array", strings if isinstance(xy, str) else "")
+    try:
+        raw = np.asarray(xy)
+    except (TypeError, ValueError):
+        fail("a ragged list: every position needs two numbers")
+    if raw.dtype.kind in "USbO":
+        # Find the first entry that is not a plain number, to name it.
+        flat = np.ravel(np.asarray(xy, dtype=object)) if raw.dtype.kind == "O" else np.ravel(raw)
+        bad = next((v for v in flat if isinstance(v, (str, bytes, bool, np.bool_))
+                    or not isinstance(v, (int, float, np.integer, np.floating))), None)
+        if bad is not None:
+            bad = bad.item() if isinstance(bad, np.generic) else bad
+            fail(f"entry {bad!r} is a {type(bad).__name__}", strings if isinstance(bad, str) else "")
+        if raw.dtype.kind == "O":
+            fail("a ragged list: every position needs two coordinates")
+    arr = raw.astype(float)
+    if arr.ndim == 1 and arr.shape == (2,):
+        arr = arr[None, :]
+    if arr.ndim != 2 or arr.shape[1] != 2:
+        fail(f"shape {raw.shape}")
+    if n is not None and len(arr) != n:
+        fail(f"{len(arr)} position{'s' if len(arr) != 1 else ''} for {n} bod{'ies' if n != 1 else 'y'}")
+    if not np.all(np.isfinite(arr)):
+        fail(f"non-finite value at row {int(np.flatnonzero(~np.isfinite(arr).all(axis=1))[0])}")
+    return arr
+
+
+def check_bodies(bodies, name="bodies"):
+    """Validate the bodies given to the API; returns them as a tuple of :class:`Body`.
+
+    Parameters
+    ----------
+    bodies : sequence of Body
+    name : str
+        The argument's name, used in the message.
+
+    Returns
+    -------
+    tuple of Body
+
+    Raises
+    ------
+    FieldplanError
+        ``bodies`` is a single Body, a string, empty, or holds anything but Body objects (the
+        message names the index and what was given instead).
+
+    Examples
+    --------
+    >>> b = Body("bead", 5e-6, 1050.0)
+    >>> len(check_bodies([b, b]))
+    2
+    >>> check_bodies(["bead"])
+    Traceback (most recent call last):
+    ...
+    fieldplan.errors.FieldplanError: bodies[0] must be a fieldplan.Body, got the string 'bead'; build one with fieldplan.Body('bead', radius=..., density=...).
+    """
+    if isinstance(bodies, Body):
+        raise FieldplanError(f"{name} must be a sequence of fieldplan.Body, got a single Body {bodies.name!r}; "
+                             f"pass [{bodies.name}] (a list).")
+    if isinstance(bodies, (str, bytes)):
+        raise FieldplanError(f"{name} must be a sequence of fieldplan.Body, got the string {bodies!r}; build "
+                             f"bodies with fieldplan.Body({bodies!r}, radius=..., density=...).")
+    try:
+        items = tuple(bodies)
+    except TypeError:
+        raise FieldplanError(f"{name} must be a sequence of fieldplan.Body, got {type(bodies).__name__} "
+                             f"{bodies!r}.") from None
+    if not items:
+        raise FieldplanError(f"{name} must hold at least one fieldplan.Body, got an empty {type(bodies).__name__}.")
+    for i, b in enumerate(items):
+        if isinstance(b, Body):
+            continue
+        if isinstance(b, str):
+            raise FieldplanError(f"{name}[{i}] must be a fieldplan.Body, got the string {b!r}; build one with "
+                                 f"fieldplan.Body({b!r}, radius=..., density=...).")
+        raise FieldplanError(f"{name}[{i}] must be a fieldplan.Body, got {type(b).__name__} {b!r}.")
+    return items

@@ -1388,7 +1388,7 @@ def plot_coverage(fit, *, kind=None, extent=None, resolution=90):
 def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=None, name="actuator",
                       window=9, polyorder=2, stride=None, max_jump=None, sort=False, kernel="thin_plate_spline",
                       smoothing=None, folds=5, min_samples=20, max_samples=800, bandwidth=None, plots=True,
-                      note=None, warn=True, rng=0):
+                      note=None, warn=True, rng=0, skip_bad_rows=False, report_dir=None):
     """Fit a calibrated actuator from a tracking CSV and write it with a report.
 
     Writes into ``out_dir`` (created if needed): ``<name>.npz`` + ``<name>.json`` (the actuator,
@@ -1420,6 +1420,12 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
         Re-emit the data and calibration warnings (they are always listed in the report's
         ``warnings``; a command-line caller that prints those may pass False).
     rng : int
+    skip_bad_rows : bool
+        Skip unreadable rows of the tracking file and list them in the report's ``skipped_rows``
+        (see :func:`fieldplan.tracking.read_tracks`).
+    report_dir : str, optional
+        Folder the report's paths name, default ``out_dir`` (the command line writes into a
+        temporary folder that is renamed to ``report_dir`` once complete).
 
     Returns
     -------
@@ -1427,8 +1433,8 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
         ``actuator`` (JSON path), ``arrays`` (NPZ path), ``report`` (report path), ``plots`` (dict
         of PNG paths), ``fields`` (per-field rows: samples, CV error, noise floor, speed, all SI),
         ``tracking`` (frame, track, segment and issue counts), ``issues`` (text of each data
-        issue), ``warnings`` (text of each warning raised), ``skipped``, ``channels``,
-        ``primitives``, ``tags``.
+        issue), ``warnings`` (text of each warning raised), ``skipped``, ``skipped_rows`` (text of
+        each row skipped by ``skip_bad_rows``), ``channels``, ``primitives``, ``tags``.
 
     Raises
     ------
@@ -1443,7 +1449,7 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
     caught = []
     with warnings.catch_warnings(record=True) as rec:
         warnings.simplefilter("always")
-        data = read_tracks(tracks_csv, units=units, max_jump=max_jump, sort=sort)
+        data = read_tracks(tracks_csv, units=units, max_jump=max_jump, sort=sort, skip_bad_rows=skip_bad_rows)
         samples = velocity_samples(data, window=window, polyorder=polyorder, stride=stride)
         fit = fit_field(samples, kernel=kernel, smoothing=smoothing, folds=folds, min_samples=min_samples,
                         max_samples=max_samples, bandwidth=bandwidth, primitives=primitives, rng=rng)
@@ -1475,10 +1481,21 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
         "channels": [{"name": c.name, "unit": c.unit, "values": list(c.values)} for c in act.channels],
         "primitives": [{"name": p.name, "values": list(p.values)} for p in act.primitives()],
         "idle_primitive": act.idle_primitive, "tags": sorted(act.tags), "extent_m": list(act.extent),
+        "skipped_rows": [f"line {i.line}: {i.message}" for i in data.issues if i.kind == "skipped"],
     }
-    tmp = f"{report['report']}.tmp-{os.getpid()}"
+    if report_dir is not None:
+        # Name the files where they will be, not in the temporary folder they are written to.
+        final = os.path.abspath(os.fspath(report_dir))
+
+        def moved(p):
+            return os.path.join(final, os.path.relpath(p, out_dir))
+
+        report.update(actuator=moved(json_path), arrays=moved(npz_path), report=moved(stem + "-report.json"),
+                      plots={k: moved(v) for k, v in plot_paths.items()})
+    report_path = stem + "-report.json"
+    tmp = f"{report_path}.tmp-{os.getpid()}"
     with open(tmp, "w", encoding="utf-8") as fh:
         json.dump(_jsonable(report), fh, indent=2)
         fh.write("\n")
-    os.replace(tmp, report["report"])
+    os.replace(tmp, report_path)
     return report

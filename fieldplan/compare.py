@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import FieldplanError
+from .units import format_quantity, si_scale
 
 __all__ = ["TrialResult", "RunResult", "run_scenario", "replay_schedule_for", "Comparison", "compare",
            "make_executor", "InlineExecutor", "METRICS", "steerability_at_start"]
@@ -97,10 +98,25 @@ class RunResult:
         return 0
 
     @property
+    def schedule_origin(self):
+        """What :attr:`schedule` (``schedule.csv``) is, in words."""
+        if self.schedule is None:
+            return "no schedule"
+        if self.plan_source == "live":
+            seed = self.trials[0].seed if self.trials else self.scenario.simulation.seed
+            return (f"the inputs played in trial 1 of the closed loop (seed {seed}); each trial re-plans from "
+                    "its own tracked positions, so later trials played different inputs")
+        if self.plan_source == "replay":
+            return "the given schedule, replayed"
+        return "the planned open-loop schedule, played by every trial"
+
+    @property
     def message(self):
         parts = []
         if self.plan_source == "replay":
             parts.append("replayed the given schedule")
+        elif self.plan_source == "live" and self.schedule is not None:
+            parts.append("closed loop: schedule.csv holds the inputs played in trial 1")
         elif self.plan_success is not None:
             parts.append(("plan reached every goal" if self.plan_success else "plan did not reach every goal")
                          + (f" ({self.plan_message})" if self.plan_message and not self.plan_success else ""))
@@ -153,12 +169,16 @@ def _progress(iterable, total, show, desc):
 
 
 def _quantised(schedule, limits):
-    """Snap to the hardware time step when the schedule is not on it already."""
-    if limits is None or not limits.time_step or not schedule.n_segments:
+    """The schedule as exported: on the hardware time step, values on each channel's resolution.
+
+    Simulated and written alike, so the files hold exactly what the trials played
+    (:meth:`fieldplan.schedule.Schedule.quantise_values`).
+    """
+    if schedule is None or not schedule.n_segments:
         return schedule
-    if any(v[3] == "time_step" for v in schedule.violations(limits)):
-        return schedule.quantise(limits.time_step, limits.min_dwell or 0.0)
-    return schedule
+    if limits is not None and limits.time_step and any(v[3] == "time_step" for v in schedule.violations(limits)):
+        schedule = schedule.quantise(limits.time_step, limits.min_dwell or 0.0)
+    return schedule.quantise_values(limits)
 
 
 def replay_schedule_for(scenario, schedule):
@@ -245,7 +265,10 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
             pos = np.asarray(live.positions, dtype=float)
             m = compute_metrics(times, pos, sc.bodies, g, tol, sched, getattr(live, "events", ()))
             if k == 0:
-                run.schedule = sched
+                run.schedule = _quantised(sched, sc.limits)
+                if run.schedule is not None:
+                    run.schedule.meta["origin"] = (f"inputs played in trial 1 of the closed loop (seed {seed0}); "
+                                                   "later trials re-planned and played different inputs")
                 run.goals = g
                 run.step_times = list(getattr(live, "step_times", []) or [])
                 run.routes = getattr(live, "routes", None)
@@ -279,7 +302,7 @@ def _closed_loop():
 def _miss_message(sc, m):
     if m.get("all_reached"):
         return "all bodies reached their goals"
-    return "; ".join(f"body {i} ({b.name}) ended {m['final_error'][i]:.3g} m from its goal"
+    return "; ".join(f"body {i} ({b.name}) ended {format_quantity(m['final_error'][i], 'm')} from its goal"
                      for i, b in enumerate(sc.bodies) if not m["reached"][i])
 
 
@@ -380,6 +403,7 @@ METRICS = (
     ("time_to_goal", "time to goal", "s"),
     ("final_error", "final error", "m"),
     ("input_energy", "input energy", "unit^2 s"),
+    ("input_power_fs", "mean input power", "% of full scale"),
     ("min_separation", "min separation", "m"),
     ("planning_time_per_step", "planning time per step", "s"),
     ("steerability", "worst-direction speed at start", "m/s"),
@@ -407,10 +431,39 @@ def _task(scenario, seed, trials):
     except FieldplanError as exc:
         return {"error": str(exc)}
     agg = run.aggregate()
+    agg["input_power_fs"] = _full_scale_fraction(scenario, run)
     agg["plan_success"] = run.plan_success
     agg["plan_message"] = run.plan_message if run.plan_success is False else ""
     agg["successes"] = sum(t.success for t in run.trials)
     return agg
+
+
+def _full_scale_fraction(scenario, run):
+    """Mean input power as a percentage of full scale: ``energy / (sum_k max|bound_k|^2 * duration)``.
+
+    Over the continuous channels only (as the input energy), per trial on the schedule that trial
+    played (closed loop: its own), then averaged. Dimensionless, so variants driven in different
+    units (coil amperes, plate-amplifier volts, electrode volts) share one axis; nan without a
+    schedule.
+    """
+    keep = run._energy_channels()
+    full = sum(max(abs(c.lower), abs(c.upper)) ** 2 for c in scenario.actuator.channels if c.name in keep)
+    if not full > 0:
+        return float("nan")
+    played = [t.schedule if t.schedule is not None else run.schedule for t in run.trials] or [run.schedule]
+    out = []
+    for sched in played:
+        if sched is None or not sched.duration > 0:
+            continue
+        energy = sum(e for c, e in zip(sched.channels, sched.energy()) if c.name in keep)
+        out.append(100.0 * float(energy) / (full * sched.duration))
+    return float(np.mean(out)) if out else float("nan")
+
+
+def arrival_tolerance(scenario):
+    """Arrival radius of a scenario, m: ``planner.tolerance``, else the smallest body radius."""
+    tol = scenario.planner.get("tolerance")
+    return float(tol) if tol else float(min(b.radius for b in scenario.bodies))
 
 
 @dataclass
@@ -420,8 +473,9 @@ class Comparison:
     Attributes
     ----------
     rows : list of dict
-        ``label``, ``actuator``, ``runs``, ``errors`` and, per metric in :data:`METRICS`, the mean
-        and standard deviation over runs (``<key>`` and ``<key>_sd``), SI.
+        ``label``, ``actuator``, ``runs``, ``errors``, ``tolerance`` (the arrival radius, m),
+        ``required_success`` and, per metric in :data:`METRICS`, the mean and standard deviation
+        over runs (``<key>`` and ``<key>_sd``, nan with fewer than two runs), SI.
     runs : dict
         label -> list of per-seed aggregate dicts.
     """
@@ -455,7 +509,12 @@ class Comparison:
                 v = r.get(key)
                 sd = r.get(key + "_sd")
                 if key == "success_rate":
-                    cells.append("n/a" if _nan(v) else f"{100 * v:.0f} %")
+                    need = r.get("required_success")
+                    below = not _nan(v) and need is not None and v < need - 1e-12
+                    cells.append("n/a" if _nan(v) else f"{100 * v:.0f} %"
+                                 + (f" (below the required {100 * need:.0f} %)" if below else ""))
+                elif key == "input_power_fs":
+                    cells.append("n/a" if _nan(v) else f"{v:.3g} %" + (f" ± {sd:.2g}" if not _nan(sd) and sd else ""))
                 elif key == "input_energy":
                     # Four significant digits and no exponent up to 1e4 ("3553 V^2 s", not "3.55e+03").
                     txt = "n/a" if _nan(v) else f"{v:.4g} {r.get('energy_unit', 'unit^2 s')}"
@@ -463,9 +522,9 @@ class Comparison:
                         txt += f" ± {sd:.2g}"
                     cells.append(txt)
                 else:
-                    txt = format_si(v, unit)
+                    txt = format_quantity(v, unit)
                     if not _nan(sd) and sd and key != "steerability":
-                        txt += f" ± {format_si(sd, unit)}"
+                        txt += f" ± {format_quantity(sd, unit)}"
                     cells.append(txt)
             lines.append("| " + " | ".join(cells) + " |")
         notes = [f"- {r['label']}: {r['plan_failures']} of {r['runs']} plan(s) did not reach every goal; first: "
@@ -475,86 +534,105 @@ class Comparison:
         if notes:
             lines += ["", "Notes:"] + notes
         lines.append("")
-        lines.append("Means over runs (± standard deviation); time to goal over successful runs only; "
-                     "input energy is the integral of the squared channel values summed over the continuous channels "
-                     "(discrete settings such as a drive frequency are left out), in the channels' own units "
-                     "(compare it only between variants with the same channel units); "
-                     "worst-direction speed of all bodies together at their starts (fieldplan.steer).")
+        lines.append("Means over runs (± standard deviation when there are two or more); time to goal over "
+                     "successful runs only; input energy is the integral of the squared channel values summed over "
+                     "the continuous channels (discrete settings such as a drive frequency are left out), in the "
+                     "channels' own units (compare it only between variants with the same channel units); mean input "
+                     "power is that energy over the schedule's duration, as a percentage of all those channels held at "
+                     "full scale (comparable across units); worst-direction speed of all bodies together at their "
+                     "starts (fieldplan.steer). A variant below its required success rate is marked; the "
+                     "comparison itself succeeded.")
         return "\n".join(lines)
 
     def bar_chart(self):
-        """Figure with one panel per metric, one bar (with a standard-deviation whisker) per variant.
+        """Figure with one panel per metric, one bar per variant.
 
-        Every bar is labelled with its value, so small values (a few µm against mm) and zeros stay
-        readable. Input energies in different units (A^2 s, V^2 s) cannot share an axis: then each bar
-        is drawn relative to the largest energy with the same unit, and labelled with its own value
-        and unit.
+        Variants of different scale share one figure only through dimensionless panels: final error
+        and minimum separation are drawn relative to each variant's arrival radius (``tolerance``:
+        a 5 mm dish, a 180 mm plate and a 0.24 mm chip then read alike, 1 = the arrival radius),
+        and input power as a percentage of the variant's full scale (coil amperes and amplifier or
+        electrode volts are never put on one axis). Every bar is labelled with its value (absolute
+        values in their own SI prefix). A whisker is one standard deviation over runs and is drawn
+        only with two or more runs; the success panel marks each variant's required rate.
         """
         import matplotlib  # noqa: PLC0415
         from matplotlib.figure import Figure  # noqa: PLC0415
         from matplotlib.patches import Rectangle  # noqa: PLC0415
 
-        keys = [m for m in METRICS if any(not _nan(r.get(m[0])) for r in self.rows)]
-        n = len(keys)
+        from .plots import axis_label  # noqa: PLC0415
+
+        tol = np.array([r.get("tolerance") or np.nan for r in self.rows], dtype=float)
+        panels = []  # (key, title, values, sds, axis unit label, value texts)
+        for key, title, unit in METRICS:
+            if key == "input_energy" or not any(not _nan(r.get(key)) for r in self.rows):
+                continue
+            vals = np.array([np.nan if _nan(r.get(key)) else r[key] for r in self.rows], dtype=float)
+            sds = np.array([np.nan if _nan(r.get(key + "_sd")) else r[key + "_sd"] for r in self.rows], dtype=float)
+            if key == "success_rate":
+                panels.append((key, title, 100 * vals, np.full_like(vals, np.nan), "%",
+                               ["n/a" if not np.isfinite(v) else f"{100 * v:.0f} %" for v in vals]))
+            elif key in ("final_error", "min_separation"):
+                texts = ["n/a" if not np.isfinite(v) else f"{v / t:.2g}\n({format_quantity(v, unit)})"
+                         for v, t in zip(vals, tol)]
+                panels.append((key, f"{title} / arrival radius", vals / tol, sds / tol, "1", texts))
+            elif key == "input_power_fs":
+                panels.append((key, title, vals, sds, "% of full scale",
+                               ["n/a" if not np.isfinite(v) else f"{v:.3g} %" for v in vals]))
+            else:
+                f, label = si_scale(float(np.nanmax(np.abs(vals))), unit)
+                panels.append((key, title, vals * f, sds * f, label,
+                               [format_quantity(v, unit) for v in vals]))
+        n = len(panels)
         cols = min(3, max(n, 1))
         rows = int(math.ceil(n / cols)) or 1
-        fig = Figure(figsize=(4.4 * cols, 3.3 * rows + 0.5), layout="constrained")
+        fig = Figure(figsize=(4.4 * cols, 3.3 * rows + 0.6), layout="constrained")
         axes = fig.subplots(rows, cols, squeeze=False)
         labels = [r["label"] for r in self.rows]
         colours = matplotlib.rcParams["axes.prop_cycle"].by_key()["color"]
         # Variant names often share a prefix ("scenario/"); the legend carries the full names.
         short = _short_labels(labels)
-        for ax, (key, title, unit) in zip(axes.flat, keys):
-            vals = np.array([np.nan if _nan(r.get(key)) else r[key] for r in self.rows], dtype=float)
-            sds = np.array([0.0 if _nan(r.get(key + "_sd")) else r[key + "_sd"] for r in self.rows], dtype=float)
-            texts = None
-            ticks = list(short)
-            ylabel = None
+        x = np.arange(len(labels))
+        wide = max(len(t) for t in short) > 10
+        for ax, (key, title, vals, sds, ulabel, texts) in zip(axes.flat, panels):
+            shown = np.nan_to_num(vals)
+            # A standard deviation needs two runs: no whisker (not even a zero one) otherwise.
+            err = np.where(np.isfinite(sds), sds, 0.0)
+            ax.bar(x, shown, color=[colours[i % len(colours)] for i in range(len(labels))],
+                   yerr=err if np.any(np.isfinite(sds)) else None, capsize=3, error_kw={"lw": 0.8})
+            top = float(np.nanmax(np.r_[shown + err, 0.0]))
             if key == "success_rate":
-                scale, ulabel = 100.0, "%"
-            elif key == "input_energy":
-                eu = [r.get("energy_unit") or "unit^2 s" for r in self.rows]
-                pretty = [_pretty_unit(u) for u in eu]
-                if len(set(eu)) == 1:
-                    # No SI prefix: "kV²·s" would read as (kV)²·s.
-                    scale, ulabel = 1.0, pretty[0]
-                else:
-                    peak = {u: np.nanmax(np.where([e == u for e in eu], np.abs(vals), np.nan)) for u in set(eu)}
-                    rel = np.array([v / peak[u] if peak[u] else 0.0 for v, u in zip(vals, eu)])
-                    sds = np.array([s / peak[u] if peak[u] else 0.0 for s, u in zip(sds, eu)])
-                    texts = [("n/a" if not np.isfinite(v) else f"{v:.4g} {p}") for v, p in zip(vals, pretty)]
-                    ticks = [f"{s}\n[{p}]" for s, p in zip(short, pretty)]
-                    vals, scale, ulabel = rel, 1.0, None
-                    ylabel = "relative to the largest\nwith the same unit [1]"
-            else:
-                scale, ulabel = _prefix(np.nanmax(np.abs(vals)) if np.any(np.isfinite(vals)) else 1.0, unit)
-            x = np.arange(len(labels))
-            shown = np.nan_to_num(vals * scale)
-            ax.bar(x, shown, yerr=sds * scale, capsize=3, error_kw={"lw": 0.8},
-                   color=[colours[i % len(colours)] for i in range(len(labels))])
-            if texts is None:
-                # Each value in its own prefix (19.9 µm, not 0.0199 mm); zero in the axis unit.
-                texts = ["n/a" if not np.isfinite(v) else f"{v * scale:.3g} {ulabel}".strip()
-                         if key in ("success_rate", "input_energy") or v == 0 else format_si(v, unit)
-                         for v in vals]
-            top = float(np.nanmax(np.r_[shown + sds * scale, 0.0]))
-            top = top if top > 0 else 1.0
-            for i, txt in enumerate(texts):
-                ax.annotate(txt, (x[i], max(shown[i] + sds[i] * scale, 0.0)), xytext=(0, 2),
-                            textcoords="offset points", ha="center", va="bottom", fontsize=7.5)
-            # Headroom for the value labels only, not a fixed empty band.
-            ax.set_ylim(0, 1.15 * top if key != "success_rate" else 112)
-            if key == "success_rate":
+                need = [100 * float(r.get("required_success", 1.0)) for r in self.rows]
+                ax.hlines(need, x - 0.4, x + 0.4, colors="k", linestyles="--", lw=0.9)
+                ax.set_ylim(0, 118)
                 ax.set_yticks([0, 25, 50, 75, 100])
-            ax.set_xticks(x, ticks, rotation=20 if max(len(t) for t in short) > 10 else 0,
-                          ha="right" if max(len(t) for t in short) > 10 else "center", fontsize=8)
+            elif key in ("final_error", "min_separation"):
+                ax.axhline(1.0, color="k", ls="--", lw=0.8)
+                top = max(top, 1.0)
+                ax.set_ylim(0, 1.25 * top)
+            else:
+                ax.set_ylim(0, 1.2 * top if top > 0 else 1.0)
+            for i, txt in enumerate(texts):
+                ax.annotate(txt, (x[i], max(shown[i] + err[i], 0.0)), xytext=(0, 2), textcoords="offset points",
+                            ha="center", va="bottom", fontsize=7.5)
+            ax.set_xticks(x, short, rotation=20 if wide else 0, ha="right" if wide else "center", fontsize=8)
             ax.set_title(title, fontsize=10)
-            ax.set_ylabel(ylabel or (f"{title} [{ulabel}]" if ulabel else title), fontsize=9)
+            short_title = title.replace("final error", "error").replace("min separation", "separation")
+            ax.set_ylabel(axis_label(short_title, ulabel), fontsize=9)
             ax.grid(axis="y", alpha=0.3)
         for ax in list(axes.flat)[n:]:
             ax.set_visible(False)
         handles = [Rectangle((0, 0), 1, 1, color=colours[i % len(colours)]) for i in range(len(labels))]
+        notes = []
+        if any(k in ("final_error", "min_separation") for k, *_ in panels):
+            notes.append("error and separation relative to each variant's arrival radius (dashed: 1)")
+        if "success_rate" in [p[0] for p in panels]:
+            notes.append("dashed on success: required rate")
+        runs = sorted({r["runs"] for r in self.rows})
+        notes.append(f"{'/'.join(map(str, runs))} run(s) per variant" + ("; whiskers: ± 1 standard deviation"
+                                                                          if max(runs) > 1 else ""))
         fig.legend(handles, labels, loc="outside upper center", ncol=min(len(labels), 4), fontsize=8, frameon=False)
+        fig.text(0.5, 0.0, "; ".join(notes), ha="center", va="bottom", fontsize=7.5, color="0.3")
+        fig.get_layout_engine().set(rect=(0, 0.03, 1, 0.97))
         return fig
 
 
@@ -566,10 +644,6 @@ def _short_labels(labels):
     cut = common.rfind("/") + 1
     out = [lab[cut:] for lab in labels]
     return out if cut and all(out) else list(labels)
-
-
-def _pretty_unit(unit):
-    return (unit or "").replace("^2", "²").replace(" s", "·s") if unit and "^2" in unit else (unit or "")
 
 
 def _shorten(text, n=300):
@@ -587,32 +661,6 @@ def _csv_num(v):
     if isinstance(v, float) and not math.isfinite(v):
         return "" if math.isnan(v) else repr(v)
     return repr(float(v))
-
-
-_PREFIXES = ((1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M"))
-
-
-def _prefix(magnitude, unit):
-    """Scale factor and unit label so that ``magnitude * factor`` reads in [1, 1000)."""
-    if not unit or unit.startswith("unit") or not magnitude or not math.isfinite(magnitude):
-        return 1.0, unit
-    base, _, rest = unit.partition("/")
-    chosen = (1.0, "")
-    for f, p in _PREFIXES:
-        if magnitude >= f * 0.9999:
-            chosen = (f, p)
-    f, p = chosen
-    return 1.0 / f, p + base + (("/" + rest) if rest else "")
-
-
-def format_si(v, unit):
-    """``4.2e-06, "m"`` -> ``"4.2 µm"``; nan -> ``"n/a"``."""
-    if _nan(v):
-        return "n/a"
-    if v == 0:
-        return f"0 {unit}".strip()
-    f, u = _prefix(abs(v), unit)
-    return f"{v * f:.3g} {u}".strip()
 
 
 def compare(scenarios, *, seeds=(0,), trials=1, executor=None, progress=False):
@@ -658,7 +706,8 @@ def compare(scenarios, *, seeds=(0,), trials=1, executor=None, progress=False):
         runs = sorted(results[s.name], key=lambda r: r["seed"])
         ok = [r for r in runs if "error" not in r]
         row = {"label": s.name, "actuator": type(s.actuator).__name__, "runs": len(runs),
-               "errors": len(runs) - len(ok), "error_messages": [r["error"] for r in runs if "error" in r]}
+               "errors": len(runs) - len(ok), "error_messages": [r["error"] for r in runs if "error" in r],
+               "tolerance": arrival_tolerance(s), "required_success": float(s.simulation.required_success)}
         units = sorted({c.unit for c in s.actuator.channels if not c.values})
         if len(units) != 1:
             row["energy_unit"] = "mixed units"

@@ -30,7 +30,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .actuator import Segment
-from .errors import FieldplanError
+from .body import check_bodies, check_positions
+from .errors import FieldplanError, WorkspaceError
 from .planning import make_controller
 
 __all__ = ["run_live", "closed_loop", "LiveResult"]
@@ -331,8 +332,9 @@ def closed_loop(model, truth, bodies, workspace, starts, goals, *, limits=None, 
     """
     from .simulate import Simulator, check_placement, compute_metrics
 
-    bodies = list(bodies)
-    starts = np.asarray(starts, dtype=float)
+    bodies = list(check_bodies(bodies))
+    starts = check_positions(starts, "starts", n=len(bodies), error=WorkspaceError)
+    goals = check_positions(goals, "goals", n=len(bodies), error=WorkspaceError)
     check_placement(bodies, workspace, starts, "start")
     if not (0.0 <= drop_rate < 1.0):
         raise FieldplanError(f"closed_loop drop_rate must be in [0, 1), got {drop_rate!r}.")

@@ -33,6 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .actuator import Segment
+from .body import check_bodies, check_positions
 from .control import (StepData, StepProgram, pair_slots, point_at, polyline_arclength, project_to_route,
                       reference_points, variation_length)
 from .errors import WorkspaceError
@@ -785,8 +786,9 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
     from .schedule import Schedule
     from .simulate import Simulator, check_placement, compute_metrics
 
-    bodies = list(bodies)
-    starts = np.asarray(starts, dtype=float)
+    bodies = list(check_bodies(bodies))
+    starts = check_positions(starts, "starts", n=len(bodies), error=WorkspaceError)
+    goals = check_positions(goals, "goals", n=len(bodies), error=WorkspaceError)
     check_placement(bodies, workspace, starts, "start")
     ctrl = make_controller(actuator, bodies, workspace, goals, limits=limits, settings=settings)
     ctrl.prepare(starts)

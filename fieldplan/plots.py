@@ -1,8 +1,12 @@
 """Figures of a run: workspace with routes and trajectories, positions and errors over time, inputs.
 
 Every function returns a matplotlib ``Figure`` (no ``plt.show()``); lengths are drawn in the unit
-that suits the workspace (µm, mm or m) and every axis names its unit. :func:`animate` writes a GIF
+that suits the workspace (µm, mm or m) and every axis names its unit in one style,
+:func:`axis_label` (``x [µm]``, a dimensionless quantity ``[1]``). :func:`animate` writes a GIF
 with matplotlib's Pillow writer.
+
+An actuator may offer ``outlines()``: shapely polygons on the plane, m, of hardware worth seeing
+under the bodies (electrode pads); the workspace, field and animation figures draw them.
 """
 
 from __future__ import annotations
@@ -11,8 +15,22 @@ import os
 
 import numpy as np
 
-__all__ = ["length_unit", "plot_workspace", "plot_timeline", "plot_inputs", "plot_primitive_fields",
+__all__ = ["length_unit", "axis_label", "plot_workspace", "plot_timeline", "plot_inputs", "plot_primitive_fields",
            "animate", "save", "speed_backdrop"]
+
+_DIMENSIONLESS = ("", "1", "-", "dimensionless")
+
+
+def axis_label(name, unit):
+    """The one axis-label style of fieldplan's figures: ``name [unit]``.
+
+    Examples
+    --------
+    >>> axis_label("x", "µm"), axis_label("fraction steerable", "1"), axis_label("count", "")
+    ('x [µm]', 'fraction steerable [1]', 'count [1]')
+    """
+    u = (unit or "").strip()
+    return f"{name} [{'1' if u in _DIMENSIONLESS else u}]"
 
 
 def length_unit(span):
@@ -25,11 +43,10 @@ def length_unit(span):
 
 
 def _speed_unit(v):
-    if v < 1e-3:
-        return 1e6, "µm/s"
-    if v < 1.0:
-        return 1e3, "mm/s"
-    return 1.0, "m/s"
+    """Display factor and label for speeds of about ``v`` m/s (:func:`fieldplan.units.si_scale`)."""
+    from .units import si_scale  # noqa: PLC0415
+
+    return si_scale(v, "m/s")
 
 
 def _figure(**kw):
@@ -121,6 +138,20 @@ def speed_backdrop(actuator, body, medium, workspace, n=48, radius=None):
     return xs, ys, speed.reshape(ny, nx)
 
 
+def draw_outlines(ax, actuator, f):
+    """Draw the actuator's ``outlines()`` (e.g. electrode pads), if it has any; returns whether it did."""
+    get = getattr(actuator, "outlines", None)
+    shapes = list(get()) if callable(get) else []
+    for g in shapes:
+        for part in getattr(g, "geoms", [g]):
+            for ring in [part.exterior, *part.interiors]:
+                x, y = (np.asarray(c) * f for c in ring.xy)
+                # A dark line under a light one reads on every colour of a backdrop.
+                ax.plot(x, y, color="k", lw=1.3, alpha=0.6, zorder=2.5)
+                ax.plot(x, y, color="w", lw=0.6, alpha=0.95, zorder=2.6)
+    return bool(shapes)
+
+
 def _draw_workspace(ax, workspace, f):
     from matplotlib.patches import Polygon as MplPolygon  # noqa: PLC0415
 
@@ -197,6 +228,7 @@ def plot_workspace(workspace, bodies, starts, goals, *, routes=None, trajectorie
                               cmap="Greys", vmin=0, vmax=1.6, alpha=0.75, interpolation="nearest",
                               aspect="equal", zorder=1).set_clip_path(clip)
                     extra.append(Patch(color="0.55", alpha=0.75, label="outside the actuator's extent"))
+    outlined = draw_outlines(ax, actuator, f) if actuator is not None else False
     _draw_workspace(ax, workspace, f)
     colours = [f"C{i % 10}" for i in range(len(bodies))]
     starts = np.asarray(starts, dtype=float)
@@ -238,6 +270,8 @@ def plot_workspace(workspace, bodies, starts, goals, *, routes=None, trajectorie
     handles = [Line2D([], [], color="k", lw=1.5, label="wall")]
     if workspace.obstacles:
         handles.append(Patch(facecolor="0.55", edgecolor="k", label="obstacle"))
+    if outlined:
+        handles.append(Patch(facecolor="none", edgecolor="0.3", label="electrode / hardware outline"))
     if routes is not None:
         handles.append(Line2D([], [], color=g, ls="--", lw=1.1, label="planned route"))
     if predicted is not None:
@@ -285,38 +319,49 @@ def plot_timeline(times, positions, goals, bodies, *, tolerance=None, predicted=
     fig = _figure(figsize=(7.5, 7.0), layout="constrained")
     axes = fig.subplots(3, 1, sharex=True)
     err = np.linalg.norm(pos - goals[None], axis=2)
+    n = len(bodies)
+    # Identical or mirror-image bodies share x, y or error curves exactly: each body has its own
+    # width (earlier bodies wider, underneath) and dash pattern, so a curve on top never hides one.
+    widths = [1.3 + 2.4 * (n - 1 - i) / max(n - 1, 1) for i in range(n)]
+    dashes = [(None if i == 0 else (6, 2) if i % 3 == 1 else (2, 1.5) if i % 3 == 2 else (8, 2, 2, 2))
+              for i in range(n)]
+
+    def style(i):
+        st = {"color": f"C{i % 10}", "lw": widths[i], "alpha": 0.85 if i == 0 else 0.95, "zorder": 2 + i}
+        if dashes[i] is not None:
+            st["dashes"] = dashes[i]
+        return st
+
     for i, b in enumerate(bodies):
         c = f"C{i % 10}"
-        lab = f"body {i} ({b.name})"
-        axes[0].plot(times, pos[:, i, 0] * f, color=c, label=lab)
-        axes[1].plot(times, pos[:, i, 1] * f, color=c, label=lab)
-        # Symmetric bodies have equal errors: earlier bodies drawn wider underneath stay visible.
-        axes[2].plot(times, np.maximum(err[:, i], 1e-12) * f, color=c,
-                     lw=1.5 + 2.0 * (len(bodies) - 1 - i) / max(len(bodies) - 1, 1), alpha=0.85)
+        axes[0].plot(times, pos[:, i, 0] * f, **style(i))
+        axes[1].plot(times, pos[:, i, 1] * f, **style(i))
+        axes[2].plot(times, np.maximum(err[:, i], 1e-12) * f, **style(i))
         axes[0].axhline(goals[i, 0] * f, color=c, lw=0.6, ls="--")
         axes[1].axhline(goals[i, 1] * f, color=c, lw=0.6, ls="--")
         if predicted is not None:
             pt, pp = predicted
             pp = np.asarray(pp, dtype=float)
-            axes[0].plot(pt, pp[:, i, 0] * f, color=c, ls=":", lw=1.0)
-            axes[1].plot(pt, pp[:, i, 1] * f, color=c, ls=":", lw=1.0)
-            axes[2].plot(pt, np.maximum(np.linalg.norm(pp[:, i] - goals[i], axis=1), 1e-12) * f, color=c,
-                         ls=":", lw=1.0)
+            # On top of every simulated curve, dark so it shows over a wide one of the same colour.
+            pred = {"color": "0.1", "ls": ":", "lw": 1.0, "alpha": 0.8, "zorder": 3 + n}
+            axes[0].plot(pt, pp[:, i, 0] * f, **pred)
+            axes[1].plot(pt, pp[:, i, 1] * f, **pred)
+            axes[2].plot(pt, np.maximum(np.linalg.norm(pp[:, i] - goals[i], axis=1), 1e-12) * f, **pred)
     tol = [b.radius for b in bodies] if tolerance is None else [tolerance]
     axes[2].axhline(min(tol) * f, color="k", ls="--", lw=0.8)
     axes[2].set_yscale("log")
-    axes[0].set_ylabel(f"x [{unit}]")
-    axes[1].set_ylabel(f"y [{unit}]")
-    axes[2].set_ylabel(f"distance to goal [{unit}]")
-    axes[2].set_xlabel("time [s]")
+    axes[0].set_ylabel(axis_label("x", unit))
+    axes[1].set_ylabel(axis_label("y", unit))
+    axes[2].set_ylabel(axis_label("distance to goal", unit))
+    axes[2].set_xlabel(axis_label("time", "s"))
     axes[0].set_title("positions and distance to goal")
     from matplotlib.lines import Line2D  # noqa: PLC0415
 
     # Outside the axes, so it never hides a curve.
-    handles = [Line2D([], [], color=f"C{i % 10}", lw=1.5, label=f"body {i} ({b.name})") for i, b in enumerate(bodies)]
+    handles = [Line2D([], [], **style(i), label=f"body {i} ({b.name})") for i, b in enumerate(bodies)]
     handles += [Line2D([], [], color="0.3", lw=1.5, label="simulated")]
     if predicted is not None:
-        handles.append(Line2D([], [], color="0.3", ls=":", lw=1.0, label="predicted"))
+        handles.append(Line2D([], [], color="0.1", ls=":", lw=1.0, alpha=0.8, label="predicted"))
     handles += [Line2D([], [], color="0.3", ls="--", lw=0.6, label="goal"),
                 Line2D([], [], color="k", ls="--", lw=0.8, label="arrival radius")]
     axes[0].legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
@@ -398,10 +443,12 @@ def _limit_lines(ax, lim, colour, unit):
         if val is not None:
             ax.axhline(val, color=colour, ls="--", lw=0.7, alpha=0.8)
     if lim.rms is not None:
-        win = f", {lim.rms_window:g} s window" if lim.rms_window else ""
+        from .units import format_quantity  # noqa: PLC0415
+
+        win = f", {format_quantity(lim.rms_window, 's')} window" if lim.rms_window else ""
         for s in (-1, 1):
             ax.axhline(s * lim.rms, color=colour, ls="-.", lw=0.7, alpha=0.8)
-        return f"RMS limit {lim.rms:g} {unit}{win}"
+        return f"RMS limit {format_quantity(lim.rms, '1' if unit == 'dimensionless' else unit)}{win}"
     return None
 
 
@@ -469,7 +516,9 @@ def plot_inputs(schedule, *, limits=None):
                                       gridspec_kw={"height_ratios": [p[2] for p in panels]})[:, 0])
     edges = np.linspace(t0, t1, _BINS + 1) if dense else None
     width = (t1 - t0) / _BINS
-    wlab = f"{width * 1e3:.3g} ms" if width < 1 else f"{width:.3g} s"
+    from .units import format_quantity  # noqa: PLC0415
+
+    wlab = format_quantity(width, "s")
     t = np.append(starts, t1)
     for ax, (kind, payload, _) in zip(axes, panels):
         if kind in ("lines", "heat"):
@@ -484,7 +533,7 @@ def plot_inputs(schedule, *, limits=None):
                 img = ax.imshow(mean.T, aspect="auto", origin="lower", interpolation="nearest",
                                 extent=(t0, t1, -0.5, len(ks) - 0.5), cmap="RdBu_r" if signed else "viridis",
                                 vmin=-vmax if signed else 0.0, vmax=vmax)
-                fig.colorbar(img, ax=ax, pad=0.01, label=f"mean per {wlab} [{shown}]")
+                fig.colorbar(img, ax=ax, pad=0.01, label=axis_label(f"mean per {wlab}", shown))
                 ax.set_yticks(range(len(ks)), [chans[k].name for k in ks], fontsize=7)
                 ax.set_ylabel("channel")
                 continue
@@ -494,12 +543,23 @@ def plot_inputs(schedule, *, limits=None):
                 c = chans[k]
                 colour = f"C{k % 10}"
                 if dense:
-                    mean = _bin_average(starts, durs, vals[:, [k]], edges)[:, 0]
                     lo, hi = _bin_range(starts, durs, vals[:, [k]], edges)
                     ax.fill_between(edges, np.append(lo[:, 0], lo[-1, 0]), np.append(hi[:, 0], hi[-1, 0]),
                                     step="post", color=colour, alpha=0.2, lw=0)
-                    ax.step(edges, np.append(mean, mean[-1]), where="post", lw=1.0, color=colour)
-                    handles.append(Line2D([], [], color=colour, lw=1.0, label=f"{c.name}: mean per {wlab}"))
+                    if c.values:
+                        # A discrete channel (a tone selector) has no meaningful mean: a time average
+                        # of two tones is a third tone never played. Show the value held longest.
+                        u = np.unique(vals[:, k])
+                        share = _bin_average(starts, durs, (vals[:, [k]] == u[None, :]).astype(float), edges)
+                        most = u[np.argmax(share, axis=1)]
+                        ax.plot((edges[:-1] + edges[1:]) / 2, most, ls="none", marker="_", ms=5, mew=1.4,
+                                color=colour)
+                        handles.append(Line2D([], [], color=colour, ls="none", marker="_", ms=5, mew=1.4,
+                                              label=f"{c.name}: held longest per {wlab}"))
+                    else:
+                        mean = _bin_average(starts, durs, vals[:, [k]], edges)[:, 0]
+                        ax.step(edges, np.append(mean, mean[-1]), where="post", lw=1.0, color=colour)
+                        handles.append(Line2D([], [], color=colour, lw=1.0, label=f"{c.name}: mean per {wlab}"))
                     handles.append(Patch(color=colour, alpha=0.2, label=f"{c.name}: min-max per {wlab}"))
                 else:
                     # Equal channels overlap exactly: vary width, dash and marker so each stays visible.
@@ -527,10 +587,10 @@ def plot_inputs(schedule, *, limits=None):
             if unit == "Hz":
                 lo = float(np.nanmin(vals[:, ks]))
                 _hz_axis(ax, lo, float(np.nanmax(vals[:, ks])))
-                ax.set_ylabel("frequency")
+                ax.set_ylabel(axis_label("frequency", "Hz"))
             else:
-                ax.set_ylabel(f"{chans[ks[0]].name}\n[{'1' if shown == 'dimensionless' else shown}]" if single
-                              else f"value [{shown}]",
+                ax.set_ylabel(axis_label(chans[ks[0]].name + "\n", shown).replace("\n ", "\n") if single
+                              else axis_label(chans[ks[0]].name if len(ks) == 1 else "value", shown),
                               fontsize=8 if single else None)
             if single:
                 handles = handles[1:]
@@ -547,13 +607,13 @@ def plot_inputs(schedule, *, limits=None):
             duty = _bin_average(starts, durs, ind, edges)
             img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
                             extent=(t0, t1, -0.5, len(u) - 0.5), cmap="Greys", norm=_duty_norm())
-            fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab} (sqrt scale)")
+            fig.colorbar(img, ax=ax, pad=0.01, label=axis_label("share of bin", "1"))
             if c.unit == "Hz":
                 from matplotlib.ticker import EngFormatter  # noqa: PLC0415
 
                 labs = [EngFormatter(unit="Hz", places=0)(x) for x in u]
             else:
-                labs = [f"{x:.3g} {c.unit}" for x in u]
+                labs = [format_quantity(x, c.unit) for x in u]
             ax.set_yticks(range(len(u)), labs, fontsize=7)
             ax.set_ylabel(f"{c.name} played")
         else:
@@ -564,7 +624,7 @@ def plot_inputs(schedule, *, limits=None):
                 duty = _bin_average(starts, durs, ind, edges)
                 img = ax.imshow(duty.T, aspect="auto", origin="lower", interpolation="nearest",
                                 extent=(t0, t1, -0.5, len(payload) - 0.5), cmap="Greys", norm=_duty_norm())
-                fig.colorbar(img, ax=ax, pad=0.01, label=f"fraction of each {wlab} (sqrt scale)")
+                fig.colorbar(img, ax=ax, pad=0.01, label=axis_label("share of bin, sqrt scale", "1"))
             else:
                 for i, name in enumerate(payload):
                     spans = [(s, d) for s, d, lab in zip(starts, durs, schedule.labels) if lab == name]
@@ -574,7 +634,7 @@ def plot_inputs(schedule, *, limits=None):
             ax.set_ylabel("primitive played")
             ax.grid(axis="x", alpha=0.3)
     has_rms = limits is not None and any(limits.get(c.name).rms is not None for c in chans)
-    axes[-1].set_xlabel("time [s]")
+    axes[-1].set_xlabel(axis_label("time", "s"))
     axes[-1].set_xlim(t0, t1)
     axes[0].set_title("inputs" + (f" ({schedule.n_segments} segments, summarised per {wlab} bin)" if dense
                                   else " (dashed: declared bounds" + ("; dash-dot: ±RMS limit)" if has_rms else ")")))
@@ -652,12 +712,13 @@ def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n
             ax.quiver((pts[:, 0] - d[:, 0] / (2 * f)) * f, (pts[:, 1] - d[:, 1] / (2 * f)) * f, d[:, 0], d[:, 1],
                       color="w", edgecolor="k", linewidth=0.4, scale_units="xy", angles="xy", scale=1.0,
                       width=0.007, headwidth=3.5, headlength=3.5, headaxislength=3.2, zorder=4)
+        draw_outlines(ax, actuator, f)
         _draw_workspace(ax, workspace, f)
         ax.set_xlim(xmin * f, xmax * f)
         ax.set_ylim(ymin * f, ymax * f)
         ax.set_title(_short_label(p.name), fontsize=9)
-        ax.set_xlabel(f"x [{unit}]")
-        ax.set_ylabel(f"y [{unit}]")
+        ax.set_xlabel(axis_label("x", unit))
+        ax.set_ylabel(axis_label("y", unit))
     for ax in axes[len(prims):]:
         ax.set_visible(False)
     if mappable is not None:
@@ -668,7 +729,7 @@ def plot_primitive_fields(actuator, body, medium, workspace, *, max_panels=12, n
     return fig
 
 
-def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=12, dpi=80):
+def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=12, dpi=80, actuator=None):
     """Write a GIF of the bodies moving (matplotlib's PillowWriter).
 
     Parameters
@@ -685,6 +746,8 @@ def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=
         m.
     frames : int
         Number of frames (evenly spaced in time).
+    actuator : Actuator, optional
+        Its ``outlines()`` (electrode pads), if any, are drawn under the bodies.
 
     Returns
     -------
@@ -701,6 +764,8 @@ def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=
     fig = _figure(figsize=(5.0, 5.0 * (ymax - ymin) / (xmax - xmin) + 0.6), layout="constrained")
     FigureCanvasAgg(fig)
     ax = fig.add_subplot()
+    if actuator is not None:
+        draw_outlines(ax, actuator, f)
     _draw_workspace(ax, workspace, f)
     goals = np.asarray(goals, dtype=float)
     ax.scatter(goals[:, 0] * f, goals[:, 1] * f, marker="x", c=[f"C{i % 10}" for i in range(len(bodies))],

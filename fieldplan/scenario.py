@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import functools
 import hashlib
 import inspect
 import math
@@ -24,6 +25,7 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+import shapely
 import yaml
 
 from .errors import FieldplanError, ScenarioError, UnitError
@@ -51,9 +53,171 @@ class _Bad:
 BAD = _Bad()
 
 
+class _NotImported:
+    """Marker for an actuator whose module was not imported (``check_only``): its section is unchecked."""
+
+    def __repr__(self):
+        return "<actuator not imported>"
+
+
+NOT_IMPORTED = _NotImported()
+
+
 # ----------------------------------------------------------------------------------------------
 # YAML with line numbers
 # ----------------------------------------------------------------------------------------------
+
+#: Resource limits on a scenario file, so that no file can make reading it use unbounded memory or
+#: time (each is documented in the README; a file beyond one is refused with the line concerned).
+MAX_FILE_CHARS = 16_000_000     # size of the file, characters
+MAX_DEPTH = 64                  # nesting depth of lists and mappings (after alias expansion)
+MAX_NODES = 500_000             # YAML values (scalars, lists, mappings), aliases expanded
+MAX_ALIAS_NODES = 100_000       # values reached through aliases (``*name``), in total
+MAX_BODIES = 1_000              # bodies in one scenario (sum of the counts)
+MAX_OBSTACLES = 50_000          # obstacles in one workspace
+MAX_OBSTACLE_VERTICES = 3_000_000   # polygon vertices of all obstacles (a circle is 129)
+MAX_DPI = 1200                  # outputs.dpi
+MAX_TRIALS = 100_000            # simulation.trials (every trial's trajectory is kept)
+
+_PROGRESS_OBSTACLES = 2_000     # show a progress bar (on a terminal) from this many obstacles
+_PROGRESS_VALUES = 50_000       # ... and from this many YAML values while reading
+_MAX_REPEATED_WARNINGS = 10     # one warning each for this many, then one summary
+
+
+class _TooBig(Exception):
+    """A resource limit of the YAML reader was reached (line 1-based, message)."""
+
+    def __init__(self, line, message):
+        super().__init__(message)
+        self.line, self.message = line, message
+
+
+class _Bounds:
+    """Nesting-depth and node-count bounds while composing (PyYAML composes recursively, so a deeply
+    nested file would otherwise end in RecursionError)."""
+
+    def _init_bounds(self, max_depth, max_nodes, bar=None):
+        self._depth, self._nodes = 0, 0
+        self._max_depth, self._max_nodes = max_depth, max_nodes
+        self._bar = bar
+
+    def compose_node(self, parent, index):
+        self._depth += 1
+        self._nodes += 1
+        if self._bar is not None and self._nodes % 4096 == 0:
+            self._bar.update(4096)
+        try:
+            if self._depth > self._max_depth:
+                raise _TooBig(self.peek_event().start_mark.line + 1,
+                              f"lists and mappings are nested more than {self._max_depth} deep "
+                              "(fieldplan.scenario.MAX_DEPTH).")
+            if self._nodes > self._max_nodes:
+                raise _TooBig(self.peek_event().start_mark.line + 1,
+                              f"the file holds more than {self._max_nodes} values (fieldplan.scenario.MAX_NODES).")
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+
+
+class _BoundedLoader(_Bounds, yaml.SafeLoader):
+    """PyYAML's pure-Python safe loader, bounded; its error messages are the clearest."""
+
+    def __init__(self, text, max_depth, max_nodes):
+        yaml.SafeLoader.__init__(self, text)
+        self._init_bounds(max_depth, max_nodes)
+
+
+try:
+    from yaml._yaml import CParser as _CParser
+except ImportError:  # PyYAML built without libyaml
+    _CParser = None
+
+if _CParser is not None:
+    class _FastBoundedLoader(_Bounds, yaml.composer.Composer, _CParser, yaml.constructor.SafeConstructor,
+                             yaml.resolver.Resolver):
+        """libyaml's parser (several times faster on long obstacle lists) under the bounded Python composer."""
+
+        def __init__(self, text, max_depth, max_nodes, bar=None):
+            _CParser.__init__(self, text)
+            yaml.composer.Composer.__init__(self)
+            yaml.constructor.SafeConstructor.__init__(self)
+            yaml.resolver.Resolver.__init__(self)
+            self._init_bounds(max_depth, max_nodes, bar)
+
+
+def _prescan(text, max_depth, max_nodes, max_alias):
+    """Check the size limits on the parser's event stream, before any node is built.
+
+    Returns the number of values (aliases expanded), or None for malformed YAML. Every
+    collection's expanded size (values inside it, aliases counted at the size of their anchor)
+    and height are tracked in one pass, so an alias bomb or a huge or deeply nested file is refused
+    in about a second (libyaml parses; only counters are kept). Malformed YAML is left to the reader.
+    """
+    parser = _CParser(text)
+    stack = []                 # per open collection: [size, height, anchor]
+    anchors = {}               # anchor -> (size, height)
+    nodes = alias = 0
+
+    def close(size, height, anchor, mark, own):
+        nonlocal nodes
+        if anchor is not None:
+            anchors[anchor] = (size, height)
+        if stack:
+            stack[-1][0] += size
+            stack[-1][1] = max(stack[-1][1], height + 1)
+            if len(stack) + height > max_depth:
+                raise _TooBig(mark.line + 1, f"lists and mappings are nested more than {max_depth} deep once "
+                                             "aliases are expanded (fieldplan.scenario.MAX_DEPTH).")
+        nodes += own
+        if nodes > max_nodes:
+            raise _TooBig(mark.line + 1, f"the file expands to more than {max_nodes} values "
+                                         "(fieldplan.scenario.MAX_NODES).")
+
+    try:
+        while True:
+            ev = parser.get_event()
+            if ev is None or isinstance(ev, yaml.StreamEndEvent):
+                break
+            if isinstance(ev, (yaml.SequenceStartEvent, yaml.MappingStartEvent)):
+                if len(stack) >= max_depth:
+                    raise _TooBig(ev.start_mark.line + 1, f"lists and mappings are nested more than {max_depth} "
+                                                          "deep (fieldplan.scenario.MAX_DEPTH).")
+                stack.append([1, 0, ev.anchor])
+            elif isinstance(ev, (yaml.SequenceEndEvent, yaml.MappingEndEvent)):
+                size, height, anchor = stack.pop()
+                close(size, max(height, 1), anchor, ev.start_mark, 1)
+            elif isinstance(ev, yaml.ScalarEvent):
+                close(1, 0, ev.anchor, ev.start_mark, 1)
+            elif isinstance(ev, yaml.AliasEvent):
+                size, height = anchors.get(ev.anchor, (1, 0))
+                alias += size
+                if alias > max_alias:
+                    raise _TooBig(ev.start_mark.line + 1, f"aliases (*name) expand to more than {max_alias} "
+                                                          "values (fieldplan.scenario.MAX_ALIAS_NODES).")
+                close(size, height, None, ev.start_mark, size)
+    except yaml.YAMLError:
+        return None            # the reader reports malformed YAML with its own message
+    finally:
+        parser.dispose()
+    return nodes
+
+
+def _merged_size(node, memo):
+    """Number of key/value pairs a mapping has once its ``<<`` merge keys are expanded (memoised)."""
+    key = id(node)
+    if key in memo:
+        return memo[key]
+    memo[key] = 0                      # a merge cycle counts as nothing rather than recursing forever
+    total = 0
+    for kn, vn in node.value:
+        if kn.tag == "tag:yaml.org,2002:merge":
+            subs = vn.value if isinstance(vn, yaml.SequenceNode) else [vn]
+            total += sum(_merged_size(m, memo) for m in subs if isinstance(m, yaml.MappingNode))
+        else:
+            total += 1
+    memo[key] = total
+    return total
+
 
 # Tags of plain data; anything else (!!python/..., !!binary, timestamps) is refused.
 _PLAIN_TAGS = {f"tag:yaml.org,2002:{t}" for t in ("str", "int", "float", "bool", "null", "seq", "map")}
@@ -115,8 +279,11 @@ def _nearest_key(text, line):
     return "(top level)"
 
 
-def read_yaml(text, file="<scenario>"):
+def read_yaml(text, file="<scenario>", progress=False):
     """Parse YAML ``text`` with the safe loader, keeping the line of every key.
+
+    Reading is bounded (:data:`MAX_DEPTH`, :data:`MAX_NODES`, :data:`MAX_ALIAS_NODES`): an alias
+    bomb or a deeply nested file is refused with its line after a bounded amount of work.
 
     Parameters
     ----------
@@ -124,6 +291,8 @@ def read_yaml(text, file="<scenario>"):
         YAML source.
     file : str
         Name used in error messages.
+    progress : bool
+        Show a progress bar while a long file is read.
 
     Returns
     -------
@@ -132,8 +301,8 @@ def read_yaml(text, file="<scenario>"):
     Raises
     ------
     ScenarioError
-        Malformed YAML (with the line and the nearest key), more than one document, or a duplicate
-        key in a mapping.
+        Malformed YAML (with the line and the nearest key), more than one document, a duplicate
+        key in a mapping, or a resource limit reached.
 
     Examples
     --------
@@ -141,11 +310,50 @@ def read_yaml(text, file="<scenario>"):
     >>> doc.data, doc.line(("a", "c", 1))
     ({'a': {'b': '5 um', 'c': [1, 2]}}, 3)
     """
-    loader = yaml.SafeLoader(text)
+    max_depth, max_nodes, max_alias = MAX_DEPTH, MAX_NODES, MAX_ALIAS_NODES
     problems = []
+    loader, node, early = None, _MISSING, None
+    bar = None
+    if _CParser is not None:
+        try:
+            total = _prescan(text, max_depth, max_nodes, max_alias)
+        except _TooBig as exc:
+            total, early = None, exc
+        if progress and total and total >= _PROGRESS_VALUES:
+            from tqdm.auto import tqdm  # noqa: PLC0415
+
+            bar = tqdm(total=total, desc=f"reading {os.path.basename(file)}", unit=" values", leave=False)
+        loader = _FastBoundedLoader(text, max_depth, max_nodes, bar)
+        try:
+            if early is None:
+                node = loader.get_single_node()
+        except yaml.YAMLError:
+            # Re-read with the pure-Python parser: its messages and marks are the ones users see.
+            loader.dispose()
+            loader = None
+        except _TooBig as exc:
+            early = exc
+        finally:
+            if bar is not None:
+                bar.close()
+    if loader is None:
+        loader = _BoundedLoader(text, max_depth, max_nodes)
+
+    def too_big(line, message):
+        return ScenarioError([(file, line, _nearest_key(text, line or 1),
+                               f"{message} Scenario files are limited so that reading one cannot exhaust memory "
+                               "or time; simplify the file (see the README's limits).")])
+
     try:
         try:
-            node = loader.get_single_node()
+            if early is not None:
+                raise early
+            if node is _MISSING:
+                node = loader.get_single_node()
+        except _TooBig as exc:
+            raise too_big(exc.line, exc.message) from None
+        except RecursionError:
+            raise too_big(None, "the file is nested too deeply to read.") from None
         except yaml.MarkedYAMLError as exc:
             # The context mark is where the broken construct began (an unclosed bracket, a key
             # missing its colon); the problem mark is where the parser noticed. Point at the first.
@@ -166,14 +374,36 @@ def read_yaml(text, file="<scenario>"):
         if node is None:
             return YamlDoc(None, {(): 1}, file, text)
         lines[()] = node.start_mark.line + 1
+        seen = set()
+        count = {"nodes": 0, "alias": 0}
+        merge_memo = {}
 
-        def walk(n, path):
+        def walk(n, path, via_alias=False):
+            # A node met a second time is an alias (*name) being expanded: bound the total work.
+            via_alias = via_alias or id(n) in seen
+            seen.add(id(n))
+            count["nodes"] += 1
+            if via_alias:
+                count["alias"] += 1
+                if count["alias"] > max_alias:
+                    raise _TooBig(n.start_mark.line + 1, f"aliases (*name) expand to more than {max_alias} values "
+                                                         "(fieldplan.scenario.MAX_ALIAS_NODES).")
+            if count["nodes"] > max_nodes:
+                raise _TooBig(n.start_mark.line + 1, f"the file expands to more than {max_nodes} values "
+                                                     "(fieldplan.scenario.MAX_NODES).")
+            if len(path) > max_depth:
+                raise _TooBig(n.start_mark.line + 1, f"lists and mappings are nested more than {max_depth} deep "
+                                                     "once aliases are expanded (fieldplan.scenario.MAX_DEPTH).")
             if n.tag not in _PLAIN_TAGS:
                 problems.append((file, n.start_mark.line + 1, key_string(path) or "(top level)",
                                  f"YAML tag {n.tag!r} is not allowed: scenario files hold plain data only "
                                  "(numbers, text, lists, mappings)."))
                 return None
             if isinstance(n, yaml.MappingNode):
+                if any(kn.tag == "tag:yaml.org,2002:merge" for kn, _ in n.value) and \
+                        _merged_size(n, merge_memo) > max_alias:
+                    raise _TooBig(n.start_mark.line + 1, f"merge keys (<<) expand to more than {max_alias} entries "
+                                                         "(fieldplan.scenario.MAX_ALIAS_NODES).")
                 loader.flatten_mapping(n)
                 out = {}
                 for kn, vn in n.value:
@@ -189,20 +419,23 @@ def read_yaml(text, file="<scenario>"):
                                          "give each key once."))
                         continue
                     lines[kpath] = kn.start_mark.line + 1
-                    out[key] = walk(vn, kpath)
+                    out[key] = walk(vn, kpath, via_alias)
                 return out
             if isinstance(n, yaml.SequenceNode):
                 out = []
                 for i, vn in enumerate(n.value):
                     lines[path + (i,)] = vn.start_mark.line + 1
-                    out.append(walk(vn, path + (i,)))
+                    out.append(walk(vn, path + (i,), via_alias))
                 return out
             value = loader.construct_object(n, deep=True)
-            if isinstance(value, str) and n.style is None and _EXP_FLOAT.match(value.strip()):
+            if isinstance(value, str) and not n.style and _EXP_FLOAT.match(value.strip()):
                 value = float(value)
             return value
 
-        data = walk(node, ())
+        try:
+            data = walk(node, ())
+        except _TooBig as exc:
+            raise too_big(exc.line, exc.message) from None
     finally:
         loader.dispose()
     if problems:
@@ -375,8 +608,12 @@ PLOT_NAMES = ("workspace", "timeline", "inputs")
 
 #: Units of the PlanSettings fields (the rest are plain numbers, integers or booleans).
 PLANNER_UNITS = {"period": "s", "tolerance": "m", "time_limit": "s", "clearance": "m",
-                 "route_resolution": "m", "max_trust": "m", "max_step": "m", "trust_region": "m", "goal_hold": "s",
+                 "route_resolution": "m", "table_resolution": "m", "max_trust": "m", "max_step": "m", "trust_region": "m", "goal_hold": "s",
                  "step_time_limit": "s", "separation": "m", "duration": "s", "max_time": "s"}
+
+# Planner settings with a fixed set of values, and whole numbers that may be left to the planner.
+PLANNER_CHOICES = {"method": ("horizon", "step"), "balance": ("time", "squared"), "backend": ("osqp", "cvxpy")}
+PLANNER_OPTIONAL_INTS = ("horizon",)
 
 # Fields of PlanSettings from the API note, used until fieldplan.plan exists.
 _PLANNER_FALLBACK = {"period": None, "horizon": 1, "tolerance": None, "time_limit": None, "clearance": None,
@@ -480,6 +717,8 @@ class Scenario:
         SHA-256 of the source text (or of the normalised YAML when built in code).
     config : dict
         The normalised SI form of the file (what :func:`dump_scenario` writes).
+    input_files : list of str
+        Other files the scenario reads (a calibrated actuator's file), resolved.
     """
 
     name: str
@@ -501,6 +740,7 @@ class Scenario:
     digest: str = ""
     config: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
+    input_files: list = field(default_factory=list)
 
     @property
     def medium(self):
@@ -533,10 +773,13 @@ class Scenario:
 class _Ctx:
     """Collects problems while a document is read; every reader returns BAD on failure."""
 
-    def __init__(self, doc):
+    def __init__(self, doc, opts=None):
         self.doc = doc
         self.problems = []
         self.warnings = []
+        # allow_modules, on_import, check_only (see load_scenario); input_files collects paths read
+        self.opts = dict(opts or {})
+        self.input_files = []
 
     def err(self, path, message, line=None):
         self.problems.append((self.doc.file, line if line is not None else self.doc.line(path),
@@ -580,13 +823,26 @@ def _check_keys(ctx, path, mapping, schema_name, extra_allowed=()):
     return True
 
 
+@functools.lru_cache(maxsize=4096)
+def _to_si_text(value, unit):
+    # Parsing a unit string costs pint tens of microseconds; long obstacle lists repeat the same ones.
+    return to_si(value, unit)
+
+
 def _quantity(ctx, path, value, unit, *, positive=False, nonnegative=False):
     if value is None:
         return ctx.err(path, f"expected a quantity in {unit}, found nothing (null).")
     try:
-        v = to_si(value, unit, name=str(path[-1]) if path else "value")
-    except UnitError as exc:
-        return ctx.err(path, str(exc))
+        if isinstance(value, str):
+            v = _to_si_text(value, unit)
+        else:
+            v = to_si(value, unit, name=str(path[-1]) if path else "value")
+    except UnitError:
+        try:
+            to_si(value, unit, name=str(path[-1]) if path else "value")     # again, for the message with the key
+        except UnitError as exc:
+            return ctx.err(path, str(exc))
+        raise
     if positive and not v > 0:
         return ctx.err(path, f"must be > 0 {unit}, found {value!r}.")
     if nonnegative and not v >= 0:
@@ -704,10 +960,12 @@ def _read_keys(ctx, path, mapping, schema_name):
 # Sections
 # ----------------------------------------------------------------------------------------------
 
-def _shape(ctx, path, value):
-    """A shapely polygon from a shape mapping."""
-    from .workspace import circle, polygon, rectangle  # noqa: PLC0415
+def _shape_spec(ctx, path, value):
+    """Validated parameters of a shape mapping, not yet a geometry.
 
+    Returns ``("rectangle", (xmin, ymin, xmax, ymax))``, ``("circle", (cx, cy, r))`` or
+    ``("polygon", points)`` in m, or BAD (the problem recorded).
+    """
     kinds = ("rectangle", "circle", "polygon")
     if not isinstance(value, dict) or len(value) != 1:
         found = _type_name(value) if not isinstance(value, dict) else f"keys {list(value)}"
@@ -719,43 +977,74 @@ def _shape(ctx, path, value):
         close = difflib.get_close_matches(kind, kinds, n=1)
         hint = f" Did you mean {close[0]!r}?" if close else f" Allowed: {', '.join(kinds)}."
         return ctx.err(p, f"unknown shape {kind!r}.{hint}")
-    try:
-        if kind == "rectangle":
-            if isinstance(spec, dict):
-                bad = set(spec) - {"center", "size"}
-                if bad or set(spec) != {"center", "size"}:
-                    return ctx.err(p, f"rectangle mapping needs exactly keys 'center' and 'size', found "
-                                      f"{sorted(spec)}.")
-                c = _point(ctx, p + ("center",), spec["center"])
-                s = _point(ctx, p + ("size",), spec["size"])
-                if c is BAD or s is BAD:
-                    return BAD
-                if not (s[0] > 0 and s[1] > 0):
-                    return ctx.err(p + ("size",), f"rectangle size must be > 0 m, found {spec['size']!r}.")
-                return rectangle(c[0] - s[0] / 2, c[1] - s[1] / 2, c[0] + s[0] / 2, c[1] + s[1] / 2)
-            if not isinstance(spec, list) or len(spec) != 4:
-                return ctx.err(p, f"expected [xmin, ymin, xmax, ymax] in m, found {_type_name(spec)}.")
-            v = [_quantity(ctx, p + (i,), s, "m") for i, s in enumerate(spec)]
-            if any(x is BAD for x in v):
-                return BAD
-            if not (v[2] > v[0] and v[3] > v[1]):
-                return ctx.err(p, f"rectangle needs xmax > xmin and ymax > ymin, found {spec!r}.")
-            return rectangle(*v)
-        if kind == "circle":
-            if not isinstance(spec, dict) or set(spec) != {"center", "radius"}:
-                found = sorted(spec) if isinstance(spec, dict) else _type_name(spec)
-                return ctx.err(p, f"circle needs exactly keys 'center' and 'radius', found {found}.")
+    if kind == "rectangle":
+        if isinstance(spec, dict):
+            if set(spec) != {"center", "size"}:
+                return ctx.err(p, f"rectangle mapping needs exactly keys 'center' and 'size', found "
+                                  f"{sorted(spec)}.")
             c = _point(ctx, p + ("center",), spec["center"])
-            r = _quantity(ctx, p + ("radius",), spec["radius"], "m", positive=True)
-            if c is BAD or r is BAD:
+            sz = _point(ctx, p + ("size",), spec["size"])
+            if c is BAD or sz is BAD:
                 return BAD
-            return circle(c, r)
-        pts = _points(ctx, p, spec, minimum=3)
-        if pts is BAD:
+            if not (sz[0] > 0 and sz[1] > 0):
+                return ctx.err(p + ("size",), f"rectangle size must be > 0 m, found {spec['size']!r}.")
+            return ("rectangle", (c[0] - sz[0] / 2, c[1] - sz[1] / 2, c[0] + sz[0] / 2, c[1] + sz[1] / 2))
+        if not isinstance(spec, list) or len(spec) != 4:
+            return ctx.err(p, f"expected [xmin, ymin, xmax, ymax] in m, found {_type_name(spec)}.")
+        v = [_quantity(ctx, p + (i,), x, "m") for i, x in enumerate(spec)]
+        if any(x is BAD for x in v):
             return BAD
-        return polygon(pts)
-    except FieldplanError as exc:
-        return ctx.err(p, str(exc))
+        if not (v[2] > v[0] and v[3] > v[1]):
+            return ctx.err(p, f"rectangle needs xmax > xmin and ymax > ymin, found {spec!r}.")
+        return ("rectangle", tuple(v))
+    if kind == "circle":
+        if not isinstance(spec, dict) or set(spec) != {"center", "radius"}:
+            found = sorted(spec) if isinstance(spec, dict) else _type_name(spec)
+            return ctx.err(p, f"circle needs exactly keys 'center' and 'radius', found {found}.")
+        c = _point(ctx, p + ("center",), spec["center"])
+        r = _quantity(ctx, p + ("radius",), spec["radius"], "m", positive=True)
+        if c is BAD or r is BAD:
+            return BAD
+        return ("circle", (c[0], c[1], r))
+    pts = _points(ctx, p, spec, minimum=3)
+    if pts is BAD:
+        return BAD
+    return ("polygon", pts)
+
+
+def _build_shapes(ctx, paths, specs):
+    """Shapely polygons of many shape specs (from :func:`_shape_spec`) at once; BAD where one fails.
+
+    Rectangles and circles are made with one vectorised shapely call each, so a workspace with
+    tens of thousands of obstacles is built in well under a second.
+    """
+    from .workspace import CIRCLE_RESOLUTION, polygon  # noqa: PLC0415
+
+    out = np.empty(len(specs), dtype=object)
+    kinds = np.array([k for k, _ in specs] if specs else [], dtype=object)
+    for kind in ("rectangle", "circle"):
+        idx = np.flatnonzero(kinds == kind)
+        if len(idx) == 0:
+            continue
+        v = np.array([specs[i][1] for i in idx], dtype=float)
+        if kind == "rectangle":
+            out[idx] = shapely.box(v[:, 0], v[:, 1], v[:, 2], v[:, 3])
+        else:
+            out[idx] = shapely.buffer(shapely.points(v[:, :2]), v[:, 2], quad_segs=CIRCLE_RESOLUTION)
+    for i in np.flatnonzero(kinds == "polygon"):
+        try:
+            out[i] = polygon(specs[i][1])
+        except FieldplanError as exc:
+            out[i] = ctx.err(paths[i] + ("polygon",), str(exc))
+    return out
+
+
+def _shape(ctx, path, value):
+    """A shapely polygon from a shape mapping."""
+    spec = _shape_spec(ctx, path, value)
+    if spec is BAD:
+        return BAD
+    return _build_shapes(ctx, [path], [spec])[0]
 
 
 def _workspace(ctx, ws, medium):
@@ -765,25 +1054,46 @@ def _workspace(ctx, ws, medium):
     if not _check_keys(ctx, path, ws, "workspace"):
         return BAD
     boundary = _shape(ctx, path + ("boundary",), ws["boundary"]) if "boundary" in ws else BAD
-    obstacles = []
     obs = ws.get("obstacles") or []
     if not isinstance(obs, list):
         ctx.err(path + ("obstacles",), f"expected a list of shapes, found {_type_name(obs)}.")
         obs = []
-    for i, o in enumerate(obs):
-        g = _shape(ctx, path + ("obstacles", i), o)
-        if g is not BAD:
-            if boundary is not BAD and not g.intersects(boundary):
-                ctx.warn(path + ("obstacles", i), "obstacle lies wholly outside the boundary.")
-            obstacles.append(g)
-        else:
-            obstacles.append(BAD)
-    if boundary is BAD or any(o is BAD for o in obstacles) or medium is BAD:
+    if len(obs) > MAX_OBSTACLES:
+        return ctx.err(path + ("obstacles",), f"{len(obs)} obstacles given; at most {MAX_OBSTACLES} fit in one "
+                                              "workspace (fieldplan.scenario.MAX_OBSTACLES). Merge small ones "
+                                              "into larger polygons.")
+    items = enumerate(obs)
+    if ctx.opts.get("progress") and len(obs) >= _PROGRESS_OBSTACLES:
+        from tqdm.auto import tqdm  # noqa: PLC0415
+
+        items = tqdm(items, total=len(obs), desc="reading obstacles", unit="obstacle", leave=False)
+    paths = [path + ("obstacles", i) for i in range(len(obs))]
+    specs = [_shape_spec(ctx, paths[i], o) for i, o in items]
+    if any(sp is BAD for sp in specs) or boundary is BAD or medium is BAD:
         return BAD
+    from .workspace import CIRCLE_RESOLUTION  # noqa: PLC0415
+
+    vertices = sum(5 if k == "rectangle" else 4 * CIRCLE_RESOLUTION + 1 if k == "circle" else len(v) + 1
+                   for k, v in specs)
+    if vertices > MAX_OBSTACLE_VERTICES:
+        return ctx.err(path + ("obstacles",), f"the obstacles have {vertices} polygon vertices in all (a circle has "
+                                              f"{4 * CIRCLE_RESOLUTION + 1}); at most {MAX_OBSTACLE_VERTICES} are "
+                                              "allowed (fieldplan.scenario.MAX_OBSTACLE_VERTICES), so that the free "
+                                              "space fits in memory. Use fewer or simpler obstacles.")
+    obstacles = _build_shapes(ctx, paths, specs)
+    if any(o is BAD for o in obstacles):
+        return BAD
+    if len(obstacles):
+        outside = np.flatnonzero(~shapely.intersects(boundary, obstacles))
+        for i in outside[:_MAX_REPEATED_WARNINGS]:
+            ctx.warn(paths[i], "obstacle lies wholly outside the boundary.")
+        if len(outside) > _MAX_REPEATED_WARNINGS:
+            ctx.warn(path + ("obstacles",), f"{len(outside) - _MAX_REPEATED_WARNINGS} more obstacles lie wholly "
+                                            "outside the boundary.")
     try:
-        return Workspace(boundary, obstacles, medium)
+        return Workspace(boundary, list(obstacles), medium)
     except FieldplanError as exc:
-        return ctx.err(path + (("obstacles",) if obstacles else ("boundary",)), str(exc))
+        return ctx.err(path + (("obstacles",) if len(obstacles) else ("boundary",)), str(exc))
 
 
 def _medium(ctx, m):
@@ -838,6 +1148,9 @@ def _bodies(ctx, kinds):
         v = _read_keys(ctx, p, spec, "bodies[]")
         if v["count"] is not BAD and v["count"] is not None and v["count"] < 1:
             v["count"] = ctx.err(p + ("count",), f"must be a whole number >= 1, found {spec['count']!r}.")
+        elif isinstance(v["count"], int) and v["count"] > MAX_BODIES:
+            v["count"] = ctx.err(p + ("count",), f"at most {MAX_BODIES} bodies fit in one scenario "
+                                                 f"(fieldplan.scenario.MAX_BODIES), found {spec['count']!r}.")
         for key in ("radius", "density", "height", "gap", "saturation_magnetization"):
             if isinstance(v.get(key), float) and not v[key] > 0:
                 v[key] = ctx.err(p + (key,), f"must be > 0, found {spec[key]!r}.")
@@ -875,7 +1188,32 @@ def _bodies(ctx, kinds):
             ok = False
             continue
         out.append((body, int(v["count"]), i))
+    total = sum(c for _, c, _ in out)
+    if ok and total > MAX_BODIES:
+        return ctx.err(path, f"the counts add up to {total} bodies; at most {MAX_BODIES} fit in one scenario "
+                             "(fieldplan.scenario.MAX_BODIES).")
     return out if ok else BAD
+
+
+def _declared_count(kinds):
+    """Sum of the ``count`` keys of a raw ``bodies`` list (default 1 each), or None if one is not a number."""
+    if not isinstance(kinds, list):
+        return None
+    total = 0
+    for spec in kinds:
+        c = spec.get("count", 1) if isinstance(spec, dict) else None
+        if isinstance(c, bool) or not isinstance(c, int):
+            return None
+        total += c
+    return total
+
+
+def _check_position_count(ctx, section, spec, n):
+    """Report explicit positions whose number differs from ``n`` (without building any body)."""
+    pts = spec if isinstance(spec, list) else spec.get("positions") if isinstance(spec, dict) else None
+    if isinstance(pts, list) and len(pts) != n:
+        path = (section,) if isinstance(spec, list) else (section, "positions")
+        ctx.err(path, f"expected {n} positions (one per body, as the bodies' counts add up to), found {len(pts)}.")
 
 
 def _placements(ctx, section, spec, bodies, workspace):
@@ -942,8 +1280,7 @@ def _pt(xy):
 
 
 def _in_obstacle(workspace, xy):
-    p = _pt(xy)
-    return any(o.contains(p) for o in workspace.obstacles)
+    return len(workspace.obstacle_index.query(_pt(xy), predicate="within")) > 0
 
 
 def _no_overlap(ctx, path, pts, bodies, section):
@@ -1187,7 +1524,7 @@ def _registry_name(cls):
 def _actuator(ctx, path, spec, base=None):
     """Build an actuator from its section; ``base`` is the parent section for inheritance."""
     from .actuator import Actuator  # noqa: PLC0415
-    from .registry import available_actuators, load_actuator_class  # noqa: PLC0415
+    from .registry import available_actuators, is_registered_module, load_actuator_class  # noqa: PLC0415
 
     if not isinstance(spec, dict):
         return ctx.err(path, f"expected a mapping with 'type' and the actuator's parameters, found "
@@ -1204,8 +1541,15 @@ def _actuator(ctx, path, spec, base=None):
     tname, tpath = merged.get("type", (None, path))
     if not isinstance(tname, str) or not tname:
         return ctx.err(tpath, f"expected an actuator name, found {_type_name(tname)}."), None
+    if ctx.opts.get("check_only") and ":" in tname and tname not in available_actuators() and \
+            not is_registered_module(tname.partition(":")[0]):
+        # Checking a file must never run code from it: leave this section unchecked.
+        ctx.warn(tpath, f"actuator {tname!r} is not a registered plug-in; its module is not imported while "
+                        "checking, so its parameters, channels and limits are not checked.")
+        return NOT_IMPORTED, {k: _si_params(_Ctx(ctx.doc), kp, v) for k, (v, kp) in merged.items()}
     try:
-        cls = load_actuator_class(tname)
+        cls = load_actuator_class(tname, allow_modules=tuple(ctx.opts.get("allow_modules") or ()),
+                                  on_import=ctx.opts.get("on_import"))
     except FieldplanError as exc:
         return ctx.err(tpath, str(exc)), None
     params = {k: vp for k, vp in merged.items() if k != "type"}
@@ -1230,6 +1574,7 @@ def _actuator(ctx, path, spec, base=None):
     for k, v in kw.items():
         if _is_path_param(k, info.get(k)) and isinstance(v, str):
             kw[k] = _resolve_path(ctx.doc.file, v)
+            ctx.input_files.append(kw[k])
     try:
         act = factory(kw) if factory is not None else cls(**kw)
     except Exception as exc:  # noqa: BLE001 - any failure of a plug-in's constructor is the user's input
@@ -1360,6 +1705,10 @@ def _planner(ctx, spec):
             out[k] = None
         elif k in PLANNER_UNITS:
             out[k] = _quantity(ctx, p, v, PLANNER_UNITS[k], positive=True)
+        elif k in PLANNER_CHOICES:
+            out[k] = _choice(ctx, p, v, PLANNER_CHOICES[k])
+        elif k in PLANNER_OPTIONAL_INTS:
+            out[k] = _int(ctx, p, v, minimum=1)
         elif isinstance(default, bool):
             out[k] = _bool(ctx, p, v)
         elif isinstance(default, int) and not isinstance(default, bool):
@@ -1382,10 +1731,10 @@ def _simulation(ctx, spec):
     if not _check_keys(ctx, path, spec, "simulation"):
         return BAD
     v = _read_keys(ctx, path, spec, "simulation")
-    checks = {"trials": lambda x: x >= 0, "seed": lambda x: x >= 0, "tracking_noise": lambda x: x >= 0,
+    checks = {"trials": lambda x: 0 <= x <= MAX_TRIALS, "seed": lambda x: x >= 0, "tracking_noise": lambda x: x >= 0,
               "latency": lambda x: x >= 0, "max_displacement": lambda x: x > 0, "dt_max": lambda x: x > 0,
               "record_interval": lambda x: x > 0, "required_success": lambda x: 0 <= x <= 1}
-    rules = {"trials": ">= 0", "seed": ">= 0", "tracking_noise": ">= 0 m", "latency": ">= 0 s",
+    rules = {"trials": f"from 0 to {MAX_TRIALS} (fieldplan.scenario.MAX_TRIALS)", "seed": ">= 0", "tracking_noise": ">= 0 m", "latency": ">= 0 s",
              "max_displacement": "> 0 m", "dt_max": "> 0 s", "record_interval": "> 0 s",
              "required_success": "between 0 and 1"}
     for k, ok in checks.items():
@@ -1420,8 +1769,8 @@ def _outputs(ctx, spec):
     if isinstance(v["animation_frames"], int) and not 2 <= v["animation_frames"] <= 2000:
         v["animation_frames"] = ctx.err(path + ("animation_frames",), f"must be between 2 and 2000, found "
                                                                       f"{spec['animation_frames']!r}.")
-    if isinstance(v["dpi"], int) and v["dpi"] < 20:
-        v["dpi"] = ctx.err(path + ("dpi",), f"must be >= 20, found {spec['dpi']!r}.")
+    if isinstance(v["dpi"], int) and not 20 <= v["dpi"] <= MAX_DPI:
+        v["dpi"] = ctx.err(path + ("dpi",), f"must be between 20 and {MAX_DPI}, found {spec['dpi']!r}.")
     if any(x is BAD for x in v.values()):
         return BAD
     return OutputSettings(**v)
@@ -1458,6 +1807,12 @@ def _build_sections(ctx, data, name):
     bodies = BAD
     if kinds is not BAD:
         bodies = [b for b, count, _ in kinds for _ in range(count)]
+    elif "bodies" in data:
+        n = _declared_count(data["bodies"])
+        if n is not None and n >= 1:
+            for section in ("starts", "goals"):
+                if section in data:
+                    _check_position_count(ctx, section, data[section], n)
     starts = goals = BAD
     if bodies is not BAD:
         starts = _placements(ctx, "starts", data["starts"], bodies, workspace) if "starts" in data else BAD
@@ -1476,17 +1831,24 @@ def _build_sections(ctx, data, name):
         apath = data.get("__paths__", {}).get("actuator", ("actuator",))
         base_spec = aspec if aspec is not None else data["actuator"]
         truth, tspec = _actuator(ctx, tpath, data["truth"], (base_spec, apath) if isinstance(base_spec, dict) else None)
-        if truth is not BAD and actuator is not BAD:
+        if all(a is not BAD and a is not NOT_IMPORTED for a in (truth, actuator)):
             if [c.name for c in truth.channels] != [c.name for c in actuator.channels]:
                 ctx.err(tpath, f"the truth actuator's channels {[c.name for c in truth.channels]} differ from the "
                                f"planning actuator's {[c.name for c in actuator.channels]}; a schedule planned on "
                                "one cannot be played on the other.")
                 truth = BAD
-    limits = _limits(ctx, data.get("limits"), actuator)
+    unchecked = actuator is NOT_IMPORTED or truth is NOT_IMPORTED
+    if unchecked:
+        # Without the actuator its channels are unknown: limits and body checks wait for `run`.
+        limits = None
+        actuator = None if actuator is NOT_IMPORTED else actuator
+        truth = None if truth is NOT_IMPORTED else truth
+    else:
+        limits = _limits(ctx, data.get("limits"), actuator)
     planner, mode = _planner(ctx, data.get("planner"))
     simulation = _simulation(ctx, data.get("simulation"))
     outputs = _outputs(ctx, data.get("outputs"))
-    if actuator is not BAD and kinds is not BAD and medium is not BAD:
+    if actuator is not BAD and actuator is not None and kinds is not BAD and medium is not BAD:
         for body, _, i in kinds:
             for act, label in ((actuator, "actuator"), (truth, "truth")):
                 if act is None or act is BAD:
@@ -1495,7 +1857,8 @@ def _build_sections(ctx, data, name):
                     act.check_body(body, medium)
                 except FieldplanError as exc:
                     ctx.err(("bodies", i), f"the {label} cannot move kind {body.name!r}: {exc}")
-    if actuator is not BAD and workspace is not BAD and getattr(actuator, "extent", None) and starts is not BAD:
+    if actuator is not BAD and actuator is not None and workspace is not BAD and getattr(actuator, "extent", None) and \
+            starts is not BAD:
         x0, x1, y0, y1 = actuator.extent
         wx0, wy0, wx1, wy1 = workspace.bounds
         if wx0 < x0 - 1e-12 or wx1 > x1 + 1e-12 or wy0 < y0 - 1e-12 or wy1 > y1 + 1e-12:
@@ -1510,18 +1873,22 @@ def _build_sections(ctx, data, name):
                     goals=np.asarray(goals, float), actuator=actuator, truth=truth, limits=limits,
                     assign_goals=bool(unlabelled), planner=planner, mode=mode, simulation=simulation,
                     outputs=outputs, description=str(data.get("description") or ""),
-                    config={"actuator": aspec, "truth": tspec})
+                    config={"actuator": aspec, "truth": tspec,
+                            **({"limits": data.get("limits")} if unchecked and data.get("limits") else {})})
 
 
-def parse_scenario(doc, name=None):
+def parse_scenario(doc, name=None, *, allow_modules=(), on_import=None, check_only=False, progress=False):
     """Validate a :class:`YamlDoc` and build its :class:`Scenario` (and variants).
+
+    Keyword arguments as in :func:`load_scenario`.
 
     Raises
     ------
     ScenarioError
         Listing every problem found.
     """
-    ctx = _Ctx(doc)
+    ctx = _Ctx(doc, {"allow_modules": tuple(allow_modules or ()), "on_import": on_import,
+                     "check_only": bool(check_only), "progress": bool(progress)})
     data = doc.data
     if data is None:
         raise ScenarioError([(doc.file, 1, "(document)", "the file is empty; a scenario needs at least "
@@ -1585,11 +1952,12 @@ def parse_scenario(doc, name=None):
     if ctx.problems:
         raise ScenarioError(ctx.problems)
     sc.variants = variants
+    sc.input_files = list(dict.fromkeys(ctx.input_files))
     sc.source = doc.file
     sc.digest = hashlib.sha256(doc.text.encode()).hexdigest()
     sc.warnings = ctx.warnings
     for v in variants:
-        v.source, v.digest = doc.file, sc.digest
+        v.source, v.digest, v.input_files = doc.file, sc.digest, sc.input_files
         v.simulation, v.outputs = sc.simulation, sc.outputs
     return sc
 
@@ -1600,6 +1968,8 @@ class _SubCtx(_Ctx):
     def __init__(self, parent, vpath, variant):
         self.parent = parent
         self.doc = parent.doc
+        self.opts = parent.opts
+        self.input_files = parent.input_files
         self.vpath = vpath
         self.sections = set(variant)
 
@@ -1629,7 +1999,8 @@ class _SubCtx(_Ctx):
                                                                  key_string(p), message))
 
 
-def load_scenario(path_or_text, *, name=None):
+def load_scenario(path_or_text, *, name=None, allow_modules=(), on_import=None, check_only=False,
+                  progress=False):
     """Read, validate and build a scenario.
 
     Parameters
@@ -1638,6 +2009,18 @@ def load_scenario(path_or_text, *, name=None):
         A scenario file, or YAML text (anything containing a newline is taken as text).
     name : str, optional
         Label when the file has no ``name``.
+    allow_modules : sequence of str
+        Modules an actuator ``type: module:Class`` may import although they are not registered
+        plug-ins (importing runs their code); the user's configuration may allow more
+        (:func:`fieldplan.registry.user_allowed_modules`).
+    on_import : callable, optional
+        ``on_import(module, file, reason)``, called before such a module is imported.
+    check_only : bool
+        Never import a module that is not a registered plug-in: such an actuator section (and the
+        limits, which need its channels) is left unchecked with a warning, and the scenario's
+        ``actuator`` is ``None``. What ``fieldplan validate`` uses.
+    progress : bool
+        Show a progress bar while a long obstacle list is read.
 
     Returns
     -------
@@ -1664,15 +2047,23 @@ def load_scenario(path_or_text, *, name=None):
         text, file = path_or_text, name or "<scenario>"
     else:
         file = os.fspath(path_or_text)
+        if os.path.exists(file) and not os.path.isfile(file):
+            raise ScenarioError([(file, None, "(file)", "not a regular file (a folder, device or pipe cannot be a "
+                                                        "scenario file).")])
         try:
             with open(file, encoding="utf-8") as fh:
-                text = fh.read()
+                text = fh.read(MAX_FILE_CHARS + 1)
+            if len(text) > MAX_FILE_CHARS:
+                raise ScenarioError([(file, None, "(file)", f"the file is larger than {MAX_FILE_CHARS} characters "
+                                                            "(fieldplan.scenario.MAX_FILE_CHARS); a scenario file "
+                                                            "this large is refused.")])
         except FileNotFoundError:
             raise ScenarioError([(file, None, "(file)", "no such file.")]) from None
         except (OSError, UnicodeDecodeError) as exc:
             raise ScenarioError([(file, None, "(file)", f"cannot read the file ({exc}).")]) from None
-    doc = read_yaml(text, file)
-    return parse_scenario(doc, name=name)
+    doc = read_yaml(text, file, progress=progress)
+    return parse_scenario(doc, name=name, allow_modules=allow_modules, on_import=on_import, check_only=check_only,
+                          progress=progress)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1794,6 +2185,8 @@ def scenario_to_dict(sc):
         if chans:
             d["channels"] = chans
         out["limits"] = d
+    elif sc.config.get("limits"):
+        out["limits"] = _plain(sc.config["limits"])     # actuator not imported: limits as given, unchecked
     out["planner"] = dict(mode=sc.mode, **_plain(sc.planner))
     out["simulation"] = _plain(dataclasses.asdict(sc.simulation))
     o = dataclasses.asdict(sc.outputs)

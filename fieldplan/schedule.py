@@ -4,6 +4,12 @@ A :class:`Schedule` holds arrays inside (``starts``, ``durations``, ``values``) 
 :class:`~fieldplan.Segment` objects outside. :meth:`Schedule.check` refuses any violation of
 :class:`HardwareLimits`; the CSV and JSON writers are atomic (temporary file, then rename), so a
 failed export never leaves a half-written file a driver could play.
+
+Limits are compared with a tolerance of :data:`LIMIT_RTOL` relative to the limit (see
+:func:`within_limit`), so a schedule planned exactly at a limit passes despite float round-off,
+and any real excess is refused. Exported values are quantised to each channel's resolution
+(:meth:`Schedule.quantise_values`): the files hold the decimal values a driver plays (``13.35``,
+not ``13.350000000000001``), and what is checked is what is written.
 """
 
 from __future__ import annotations
@@ -21,19 +27,86 @@ import numpy as np
 
 from .actuator import Channel, Segment
 from .errors import FieldplanError, LimitError
+from .units import format_quantity
 
-__all__ = ["ChannelLimit", "HardwareLimits", "Schedule", "atomic_write"]
+__all__ = ["ChannelLimit", "HardwareLimits", "Schedule", "atomic_write", "LIMIT_RTOL", "within_limit",
+           "DEFAULT_RESOLUTION_DIGITS"]
 
-#: Relative slack for float round-off when comparing against a limit.
-_RTOL = 1e-9
+#: Tolerance relative to a limit: a value, RMS or change meets a limit ``L`` when it exceeds it by
+#: at most ``LIMIT_RTOL * |L|``. Float round-off of a schedule planned exactly at its limit is a
+#: few 1e-16 (the README's RMS example: 0.5000000000000004 A against 0.5 A); one part per billion
+#: is far below any hardware's own accuracy, so nothing a driver could notice passes.
+LIMIT_RTOL = 1e-9
+_RTOL = LIMIT_RTOL
+
+#: Default channel resolution when a :class:`ChannelLimit` declares none: the channel's span
+#: (``upper - lower``) divided by ``10**DEFAULT_RESOLUTION_DIGITS`` and rounded down to a power of
+#: ten (2 A span -> 1e-9 A). Finer than any driver's DAC, so it changes no behaviour; it removes
+#: float noise from exported values.
+DEFAULT_RESOLUTION_DIGITS = 9
+
+
+def within_limit(value, limit, lower=False):
+    """Whether ``value`` meets ``limit`` with the documented tolerance :data:`LIMIT_RTOL`.
+
+    Parameters
+    ----------
+    value : float or array_like
+        Channel unit (a value, an RMS, a change per step).
+    limit : float
+        The declared limit, same unit.
+    lower : bool
+        ``limit`` is a lower bound (``value >= limit``) instead of an upper one.
+
+    Returns
+    -------
+    bool or ndarray of bool
+
+    Examples
+    --------
+    >>> within_limit(0.5000000000000004, 0.5), within_limit(0.5000001, 0.5)
+    (True, False)
+    """
+    slack = LIMIT_RTOL * abs(limit)
+    v = np.asarray(value, dtype=float)
+    out = v >= limit - slack if lower else v <= limit + slack
+    return bool(out) if out.ndim == 0 else out
+
+
+def _decimals(step):
+    """Decimal places that write every multiple of ``step`` exactly (at most 15)."""
+    for d in range(16):
+        if abs(round(step, d) - step) <= 1e-9 * step:
+            return d
+    return 15
+
+
+def default_resolution(channel):
+    """Resolution used for ``channel`` when none is declared, channel unit (see :data:`DEFAULT_RESOLUTION_DIGITS`)."""
+    span = float(channel.upper - channel.lower)
+    if not span > 0:
+        span = max(abs(channel.lower), abs(channel.upper), 1.0)
+    return 10.0 ** (math.floor(math.log10(span)) - DEFAULT_RESOLUTION_DIGITS)
+
+
+def umask_mode(mode=0o666):
+    """``mode`` with the process umask applied: what ``open()`` would give a new file (0o777 for folders)."""
+    mask = os.umask(0o022)   # reading the umask means setting it; put it straight back
+    os.umask(mask)
+    return mode & ~mask
 
 
 def atomic_write(path, text, mode="w"):
-    """Write ``text`` to ``path`` through a temporary file in the same folder, then rename."""
+    """Write ``text`` to ``path`` through a temporary file in the same folder, then rename.
+
+    The file gets the permissions a plain ``open()`` would give it (the user's umask), not the
+    owner-only mode of a temporary file.
+    """
     path = os.fspath(path)
     folder = os.path.dirname(os.path.abspath(path))
     fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=folder)
     try:
+        os.fchmod(fd, umask_mode())
         with os.fdopen(fd, mode, newline="" if "b" not in mode else None) as fh:
             fh.write(text)
         os.replace(tmp, path)
@@ -62,6 +135,14 @@ class ChannelLimit:
         (coil heating goes with mean I^2; an amplifier's thermal rating with mean V^2).
     rms_window : float, optional
         s; default: the whole schedule.
+    resolution : float, optional
+        Smallest step of value the hardware outputs, channel unit (a DAC's least significant
+        bit, e.g. 3 A / 2**15). Exported values are multiples of it. Default
+        (:func:`default_resolution`): the span over 1e9, rounded down to a power of ten.
+
+    Notes
+    -----
+    Every limit is met within :data:`LIMIT_RTOL` relative to it (see :func:`within_limit`).
     """
 
     lower: float | None = None
@@ -70,9 +151,10 @@ class ChannelLimit:
     min_dwell: float | None = None
     rms: float | None = None
     rms_window: float | None = None
+    resolution: float | None = None
 
     def __post_init__(self):
-        for key in ("slew_rate", "min_dwell", "rms", "rms_window"):
+        for key in ("slew_rate", "min_dwell", "rms", "rms_window", "resolution"):
             v = getattr(self, key)
             if v is not None and not (np.isfinite(v) and v > 0):
                 raise FieldplanError(f"ChannelLimit {key} must be > 0, got {v!r}.")
@@ -309,51 +391,62 @@ class Schedule:
 
     # -- limits ---------------------------------------------------------------------------------
     def violations(self, limits):
-        """Every violation of ``limits`` as a list of ``(message, channel, time, limit)``."""
+        """Every violation of ``limits`` as a list of ``(message, channel, time, limit)``.
+
+        Each limit is met within :data:`LIMIT_RTOL` relative to it (:func:`within_limit`): a
+        schedule exactly at a bound, slew or RMS limit passes despite float round-off.
+        """
         out = []
         if limits is None:
             return out
         ts = limits.time_step
+
+        def q(v, unit):
+            return format_quantity(v, unit, 6)
+
         for k, c in enumerate(self.channels):
             lim = limits.get(c.name)
             col = self.values[:, k]
+            u = c.unit
             lo = c.lower if lim.lower is None else max(c.lower, lim.lower)
             hi = c.upper if lim.upper is None else min(c.upper, lim.upper)
-            span = max(abs(lo), abs(hi), 1e-300) * _RTOL
+            # Relative to the larger bound, so a bound at 0 still has round-off slack.
+            span = max(abs(lo), abs(hi), 1e-300) * LIMIT_RTOL
             for j in np.flatnonzero(col > hi + span)[:3]:
-                out.append((f"channel {c.name!r} = {col[j]:g} {c.unit} at t = {self.starts[j]:g} s exceeds the "
-                            f"upper limit {hi:g} {c.unit}", c.name, float(self.starts[j]), "upper"))
+                out.append((f"channel {c.name!r} = {q(col[j], u)} at t = {q(self.starts[j], 's')} exceeds the "
+                            f"upper limit {q(hi, u)}", c.name, float(self.starts[j]), "upper"))
             for j in np.flatnonzero(col < lo - span)[:3]:
-                out.append((f"channel {c.name!r} = {col[j]:g} {c.unit} at t = {self.starts[j]:g} s is below the "
-                            f"lower limit {lo:g} {c.unit}", c.name, float(self.starts[j]), "lower"))
+                out.append((f"channel {c.name!r} = {q(col[j], u)} at t = {q(self.starts[j], 's')} is below the "
+                            f"lower limit {q(lo, u)}", c.name, float(self.starts[j]), "lower"))
             if lim.slew_rate is not None and len(col) > 1:
                 dv = np.abs(np.diff(col))
                 dt = np.full(len(dv), ts) if ts else self.durations[1:]
                 allowed = lim.slew_rate * dt
-                for j in np.flatnonzero(dv > allowed * (1 + _RTOL) + 1e-300)[:3]:
-                    out.append((f"channel {c.name!r} changes by {dv[j]:g} {c.unit} at t = {self.starts[j + 1]:g} s; "
-                                f"the slew limit {lim.slew_rate:g} {c.unit}/s allows {allowed[j]:g} {c.unit} "
-                                f"over {dt[j]:g} s", c.name, float(self.starts[j + 1]), "slew_rate"))
+                for j in np.flatnonzero(dv > allowed * (1 + LIMIT_RTOL) + 1e-300)[:3]:
+                    out.append((f"channel {c.name!r} changes by {q(dv[j], u)} at t = {q(self.starts[j + 1], 's')}; "
+                                f"the slew limit {q(lim.slew_rate, u + '/s' if u not in ('', '1') else '1/s')} "
+                                f"allows {q(allowed[j], u)} over {q(dt[j], 's')}", c.name,
+                                float(self.starts[j + 1]), "slew_rate"))
             dwell = lim.min_dwell if lim.min_dwell is not None else limits.min_dwell
             if dwell is not None:
-                short = (self.durations < dwell * (1 - _RTOL)) & (col != c.idle)
+                short = (self.durations < dwell * (1 - LIMIT_RTOL)) & (col != c.idle)
                 for j in np.flatnonzero(short)[:3]:
-                    out.append((f"channel {c.name!r} holds {col[j]:g} {c.unit} for only {self.durations[j]:g} s at "
-                                f"t = {self.starts[j]:g} s; the minimum dwell is {dwell:g} s", c.name,
+                    out.append((f"channel {c.name!r} holds {q(col[j], u)} for only {q(self.durations[j], 's')} at "
+                                f"t = {q(self.starts[j], 's')}; the minimum dwell is {q(dwell, 's')}", c.name,
                                 float(self.starts[j]), "min_dwell"))
             if lim.rms is not None:
                 r = self.rms(lim.rms_window)[k]
-                if r > lim.rms * (1 + _RTOL):
-                    win = f"{lim.rms_window:g} s window" if lim.rms_window else "whole schedule"
-                    out.append((f"channel {c.name!r} has RMS {r:g} {c.unit} over a {win}, above its limit "
-                                f"{lim.rms:g} {c.unit}", c.name, self.start, "rms"))
+                if not within_limit(r, lim.rms):
+                    win = f"{q(lim.rms_window, 's')} window" if lim.rms_window else "whole schedule"
+                    out.append((f"channel {c.name!r} has RMS {q(r, u)} over a {win}, above its limit "
+                                f"{q(lim.rms, u)}", c.name, self.start, "rms"))
         if ts:
             for name, arr in (("start", self.starts), ("duration", self.durations)):
-                q = arr / ts
-                bad = np.flatnonzero(np.abs(q - np.round(q)) > 1e-6)
+                steps = arr / ts
+                bad = np.flatnonzero(np.abs(steps - np.round(steps)) > 1e-6)
                 for j in bad[:3]:
-                    out.append((f"segment {j} {name} {arr[j]:g} s is not a multiple of the hardware time step "
-                                f"{ts:g} s", None, float(self.starts[j]), "time_step"))
+                    out.append((f"segment {j} {name} {q(arr[j], 's')} is not a multiple of the hardware time step "
+                                f"{q(ts, 's')}", None, float(self.starts[j]), "time_step"))
         return out
 
     def check(self, limits):
@@ -419,6 +512,73 @@ class Schedule:
         starts = t0 + np.concatenate([[0.0], np.cumsum(d)[:-1]])
         return Schedule(self.channels, starts, d, np.asarray(vals), labels, self.meta)
 
+    def quantise_values(self, limits=None):
+        """Snap channel values to each channel's resolution and times to the hardware time step.
+
+        Each continuous channel's values become multiples of its resolution (``ChannelLimit.resolution``,
+        else :func:`default_resolution`), written as the nearest float to that decimal, so exported
+        files hold ``13.35`` and not ``13.350000000000001``. The snapping never creates a violation:
+        values stay inside the bounds (the grid points inside them), a change between segments
+        stays within the slew limit (each value is chosen within the allowed step of the previous
+        one), and on channels with an RMS limit values are rounded towards zero, which cannot raise
+        any window's RMS. Channels with a discrete set of values (``Channel.values``, e.g. tones)
+        are left exactly as they are. Starts and durations that are multiples of ``time_step`` are
+        rewritten as exact decimals of it. Quantising a quantised schedule changes nothing.
+
+        Parameters
+        ----------
+        limits : HardwareLimits, optional
+            Resolutions, bounds, slew and RMS limits and the time step; without it, the channels'
+            own bounds and the default resolution.
+
+        Returns
+        -------
+        Schedule
+        """
+        if not self.n_segments:
+            return self
+        limits = limits if limits is not None else HardwareLimits()
+        ts = limits.time_step
+        vals = self.values.copy()
+        for k, c in enumerate(self.channels):
+            if c.values:
+                continue
+            lim = limits.get(c.name)
+            res = lim.resolution or default_resolution(c)
+            dec = _decimals(res)
+            lo = c.lower if lim.lower is None else max(c.lower, lim.lower)
+            hi = c.upper if lim.upper is None else min(c.upper, lim.upper)
+            v = vals[:, k]
+            x = v / res
+            if lim.rms is not None:
+                kk = np.sign(x) * np.floor(np.abs(x) + 1e-6)
+            else:
+                kk = np.round(x)
+            # Only values that meet a limit are kept meeting it; a real violation is left for
+            # check() to refuse, never hidden by the snapping.
+            # Grid points inside the bounds (a bound off the grid is never rounded outward).
+            klo, khi = math.ceil(lo / res - 1e-9), math.floor(hi / res + 1e-9)
+            if klo <= khi:
+                ok = within_limit(v, hi) & within_limit(v, lo, lower=True)
+                kk = np.where(ok, np.clip(kk, klo, khi), kk)
+            if lim.slew_rate is not None and len(kk) > 1:
+                dt = np.full(len(kk) - 1, ts) if ts else self.durations[1:]
+                allowed = lim.slew_rate * dt
+                met = np.abs(np.diff(v)) <= allowed * (1 + LIMIT_RTOL)
+                steps = np.floor(allowed / res + 1e-9)
+                for j in np.flatnonzero(met) + 1:  # sequential: each step depends on the one before
+                    kk[j] = min(max(kk[j], kk[j - 1] - steps[j - 1]), kk[j - 1] + steps[j - 1])
+            vals[:, k] = np.round(kk * res, dec)
+        starts, durs = self.starts, self.durations
+        if ts:
+            dec = _decimals(ts)
+            on_grid = (np.all(np.abs(starts / ts - np.round(starts / ts)) <= 1e-6)
+                       and np.all(np.abs(durs / ts - np.round(durs / ts)) <= 1e-6))
+            if on_grid:
+                durs = np.round(np.round(durs / ts) * ts, dec)
+                starts = np.round(np.round(starts / ts) * ts, dec)
+        return Schedule(self.channels, starts, durs, vals, self.labels, self.meta)
+
     # -- export ----------------------------------------------------------------------------------
     def to_csv_text(self):
         buf = io.StringIO()
@@ -431,11 +591,14 @@ class Schedule:
     def write_csv(self, path, limits=None):
         """Write one row per segment (start, duration, one column per channel with its unit).
 
-        If ``limits`` is given the schedule is checked first and nothing is written on a violation.
+        The values written are :meth:`quantise_values` of this schedule (with ``limits``' resolutions
+        and time step). If ``limits`` is given, that quantised schedule is checked first and nothing
+        is written on a violation.
         """
+        q = self.quantise_values(limits)
         if limits is not None:
-            self.check(limits)
-        atomic_write(path, self.to_csv_text())
+            q.check(limits)
+        atomic_write(path, q.to_csv_text())
         return path
 
     @classmethod
@@ -484,14 +647,18 @@ class Schedule:
         return d
 
     def write_json(self, path, limits=None, extra=None):
-        """Write channels, units, segments and the limits it was checked against (checked first)."""
+        """Write channels, units, segments and the limits it was checked against (checked first).
+
+        As :meth:`write_csv`, the values written are :meth:`quantise_values` of this schedule.
+        """
+        q = self.quantise_values(limits)
         if limits is not None:
-            self.check(limits)
+            q.check(limits)
         from . import __version__
 
         extra = dict(extra or {})
         extra.setdefault("package_version", __version__)
-        atomic_write(path, json.dumps(self.to_dict(limits, extra), indent=1))
+        atomic_write(path, json.dumps(q.to_dict(limits, extra), indent=1))
         return path
 
     @classmethod

@@ -49,6 +49,7 @@ from scipy.spatial import ConvexHull
 from .actuator import Actuator, FieldBasis
 from .body import Body
 from .errors import ActuatorError
+from .units import format_quantity
 
 __all__ = [
     "Steerability",
@@ -60,6 +61,7 @@ __all__ = [
     "restrict",
     "subset",
     "basis_function",
+    "counting_limit",
     "SpeedMap",
     "speed_map",
     "CountCurve",
@@ -468,17 +470,17 @@ class Steerability:
         return self.steerable
 
     def summary(self):
-        """A short multi-line text report, speeds in um/s."""
+        """A short multi-line text report (speeds with SI prefixes, :func:`fieldplan.units.format_quantity`)."""
         lo, hi = self.speed_bounds
         lines = [
             f"{self.n_bodies} bodies, {self.size} {'channels' if self.mode == 'linear' else 'primitives'} "
             f"({self.mode}): {'steerable' if self.steerable else 'NOT steerable'} now",
             f"  rank {self.rank} of {2 * self.n_bodies} needed, condition {self.condition:.3g}",
-            f"  worst-direction speed {self.speed * 1e6:.4g} um/s "
-            f"(bounds {lo * 1e6:.4g} .. {hi * 1e6:.4g} um/s; {self.method})",
+            f"  worst-direction speed {format_quantity(self.speed, 'm/s', 4)} "
+            f"(bounds {format_quantity(lo, 'm/s', 4)} .. {format_quantity(hi, 'm/s', 4)}; {self.method})",
         ]
         if self.rest_distance > 0:
-            lines.append(f"  cannot hold still: uncancelled drift {self.rest_distance * 1e6:.4g} um/s")
+            lines.append(f"  cannot hold still: uncancelled drift {format_quantity(self.rest_distance, 'm/s', 4)}")
         for ob in self.obstructions[:8]:
             lines.append("  - " + ob.text)
         if len(self.obstructions) > 8:
@@ -746,12 +748,12 @@ def _describe(c, two_sided, rate, labels):
             head = f"body {bodies[0]} cannot move along {_fmt_dir(c[idx[0]])}"
         else:
             head = f"bodies {', '.join(map(str, bodies))} cannot be moved independently"
-        return bodies, f"{head}: {combo} = {scaled_rate:.3g} m/s for every input"
+        return bodies, f"{head}: {combo} = {format_quantity(scaled_rate, 'm/s')} for every input"
     if len(bodies) == 1:
         head = f"body {bodies[0]} cannot move towards {_fmt_dir(c[idx[0]])}"
     else:
         head = f"bodies {', '.join(map(str, bodies))}: one combined motion is one-way"
-    return bodies, f"{head}: {combo} <= {scaled_rate:.3g} m/s for every input"
+    return bodies, f"{head}: {combo} <= {format_quantity(scaled_rate, 'm/s')} for every input"
 
 
 def obstructions(basis, *, rtol=RTOL, max_one_sided=4, labels=None, _vs=None, _t=None):
@@ -1089,7 +1091,8 @@ class SpeedMap:
         vals = self.speed[self.free]
         low = float(vals.min()) if vals.size else 0.0
         return (f"single body over {int(self.free.sum())} free cells: mean worst-direction speed "
-                f"{self.mean_speed * 1e6:.4g} um/s, lowest {low * 1e6:.4g} um/s, dead {100 * self.dead_fraction:.1f} %")
+                f"{format_quantity(self.mean_speed, 'm/s', 4)}, lowest {format_quantity(low, 'm/s', 4)}, "
+                f"dead {100 * self.dead_fraction:.1f} %")
 
 
 def speed_map(basis_at, workspace, *, shape=(48, 48), radius=None, rtol=RTOL):
@@ -1136,6 +1139,54 @@ def speed_map(basis_at, workspace, *, shape=(48, 48), radius=None, rtol=RTOL):
 
 
 # -- how many bodies -------------------------------------------------------------------------------
+def counting_limit(basis_or_mode, size=None):
+    """The one-step counting limit: most bodies a field basis can steer independently in one period.
+
+    * ``linear`` mode, K channels: ``K / 2``. The 2N stacked velocity components are an affine
+      image of K inputs, so they cover a neighbourhood of zero only if ``K >= 2N`` (rank).
+    * ``timeshare`` mode, M primitives: ``(M - 1) / 2``. The average velocities reachable are the
+      cone of the M primitive fields about the idle point, and a set of vectors positively spans
+      R^{2N} only if it has at least 2N + 1 members (Davis, "Theory of positive linear dependence",
+      Amer. J. Math. 76, 1954), so ``M >= 2N + 1``.
+
+    Both are upper bounds; fewer directions may be available (see ``CountCurve.rank_limit``), and
+    more bodies can still be steered over several periods. This function is the single definition
+    used by :func:`count_curve`, ``fieldplan inspect`` and the benchmarks.
+
+    Parameters
+    ----------
+    basis_or_mode : FieldBasis or {"linear", "timeshare"}
+    size : int, optional
+        K or M; required with a mode string, taken from the basis otherwise.
+
+    Returns
+    -------
+    float
+        Bodies (a half-integer when K or M - 1 is odd).
+
+    Examples
+    --------
+    >>> counting_limit("linear", 6), counting_limit("timeshare", 63)
+    (3.0, 31.0)
+    """
+    if isinstance(basis_or_mode, FieldBasis):
+        mode, size = basis_or_mode.mode, basis_or_mode.size if size is None else size
+    else:
+        mode = basis_or_mode
+    if size is None or int(size) != size or size < 0:
+        raise ActuatorError(f"counting_limit: size must be a whole number of fields >= 0, got {size!r}.")
+    if mode == "linear":
+        return float(size) / 2.0
+    if mode == "timeshare":
+        return max(float(size) - 1.0, 0.0) / 2.0
+    raise ActuatorError(f"counting_limit: mode must be 'linear' or 'timeshare', got {mode!r}.")
+
+
+def counting_rule(mode):
+    """The counting rule as text for labels: ``"K/2"`` (linear) or ``"(M - 1)/2"`` (timeshare)."""
+    return "K/2" if mode == "linear" else "(M - 1)/2"
+
+
 @dataclass
 class CountCurve:
     """Fraction of random configurations of N bodies that are steerable, per N.
@@ -1151,7 +1202,8 @@ class CountCurve:
         K, number of fields.
     mode : str
     counting_limit : float
-        K/2: no affine actuator with K inputs steers more bodies than this in one step (rank).
+        :func:`counting_limit`: K/2 for K channels (linear), (M - 1)/2 for M primitives (timeshare);
+        no basis steers more bodies than this in one step.
     rank_limit : float
         Half the largest rank of the 2N x K field matrix seen in any trial, when that rank fell
         short of 2N at the largest N tried (the fields then span fewer directions than K
@@ -1176,9 +1228,10 @@ class CountCurve:
     def summary(self):
         """One line: fractions per N and the largest N steerable in at least half the trials."""
         parts = ", ".join(f"N={n}: {f:.2f}" for n, f in zip(self.counts, self.fraction))
-        return (f"steerable fraction ({self.trials} random configurations each, K = {self.size} {self.mode}): "
+        return (f"steerable fraction ({self.trials} random configurations each, "
+                f"{'K' if self.mode == 'linear' else 'M'} = {self.size} {self.mode}): "
                 f"{parts}; up to N = {self.max_steerable()} in at least half "
-                f"(counting limit K/2 = {self.counting_limit:g}"
+                f"(counting limit {counting_rule(self.mode)} = {self.counting_limit:g}"
                 + (f", field rank / 2 = {self.rank_limit:g})" if self.rank_limit < self.counting_limit else ")"))
 
 
@@ -1250,7 +1303,7 @@ def count_curve(basis_at, workspace, counts, *, trials=40, rng=0, radius=None, s
     frac = ok / trials
     low, high = _wilson(ok, trials)
     rank_limit = max_rank / 2.0 if max_rank < 2 * counts.max() else np.nan
-    return CountCurve(counts, frac, low, high, int(trials), int(size), mode, size / 2.0, rank_limit)
+    return CountCurve(counts, frac, low, high, int(trials), int(size), mode, counting_limit(mode, size), rank_limit)
 
 
 # -- design: choose primitives -----------------------------------------------------------------------
@@ -1450,9 +1503,9 @@ class DesignComparison:
     curves: dict
 
     def table(self):
-        """Plain-text table, speeds in um/s."""
+        """Plain-text table, speeds in µm/s."""
         counts = sorted({n for r in self.rows for n in r["fractions"]})
-        head = f"{'design':<20} {'K':>4} {'mode':<9} {'mean um/s':>10} {'dead %':>7} {'N max':>5}  " + \
+        head = f"{'design':<20} {'K':>4} {'mode':<9} {'mean µm/s':>10} {'dead %':>7} {'N max':>5}  " + \
             " ".join(f"N={n:<3}" for n in counts)
         lines = [head, "-" * len(head)]
         for r in self.rows:
@@ -1590,7 +1643,7 @@ class MirrorReport:
     def summary(self):
         return (f"mirror pair {'separable' if self.pair_separable else 'NOT separable'}; body on the line "
                 f"{'can' if self.can_leave_line else 'CANNOT'} leave it "
-                f"(normal speed {self.leave_speed * 1e6:.4g} um/s)"
+                f"(normal speed {format_quantity(self.leave_speed, 'm/s', 4)})"
                 + ("".join("\n  - " + o.text for o in self.pair.obstructions)))
 
 

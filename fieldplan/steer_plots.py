@@ -10,30 +10,13 @@ from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator
 
 from .errors import ActuatorError
-from .steer import CountCurve, DesignComparison, SpeedMap
+from .plots import axis_label, draw_outlines, length_unit
+from .steer import CountCurve, DesignComparison, SpeedMap, counting_rule
+from .units import si_scale
 
 __all__ = ["plot_speed_map", "plot_count_curve", "plot_comparison"]
 
-_SPEED_UNITS = ((1e-3, "mm/s"), (1e-6, "µm/s"), (1e-9, "nm/s"))
-_LENGTH_UNITS = ((1e-3, "mm"), (1e-6, "µm"))
-
-
-def _speed_unit(vmax):
-    """Scale and label that put ``vmax`` (m/s) between about 1 and 1000."""
-    for f, name in _SPEED_UNITS:
-        if vmax >= f:
-            return f, name
-    return 1e-9, "nm/s"
-
-
-def _length_unit(span):
-    for f, name in _LENGTH_UNITS:
-        if span >= 2 * f:
-            return f, name
-    return 1e-6, "µm"
-
-
-def plot_speed_map(speed_map, *, workspace=None, title=None, directions=True, ax=None):
+def plot_speed_map(speed_map, *, workspace=None, title=None, directions=True, ax=None, actuator=None):
     """Colour map of the single-body worst-direction speed; dead cells shown in grey.
 
     Parameters
@@ -46,6 +29,8 @@ def plot_speed_map(speed_map, *, workspace=None, title=None, directions=True, ax
         Mark the blocked direction in dead cells with short line segments.
     ax : matplotlib Axes, optional
         Draw into this axes (its figure is returned).
+    actuator : Actuator, optional
+        Its ``outlines()`` (electrode pads), if any, are drawn.
 
     Returns
     -------
@@ -60,15 +45,18 @@ def plot_speed_map(speed_map, *, workspace=None, title=None, directions=True, ax
         fig = ax.figure
     xs, ys = speed_map.xs, speed_map.ys
     span = max(np.ptp(xs) if xs.size > 1 else 0, np.ptp(ys) if ys.size > 1 else 0, 1e-9)
-    lf, lname = _length_unit(span)
+    # Display factors are divisors here (value / lf); the shared helpers give multipliers.
+    lm, lname = length_unit(span)
+    lf = 1.0 / lm
     vmax = float(np.nanmax(speed_map.speed)) if np.any(np.isfinite(speed_map.speed)) else 0.0
-    sf, sname = _speed_unit(vmax if vmax > 0 else 1e-6)
+    sm, sname = si_scale(vmax if vmax > 0 else 1e-6, "m/s")
+    sf = 1.0 / sm
     dx = xs[1] - xs[0] if xs.size > 1 else 1.0
     dy = ys[1] - ys[0] if ys.size > 1 else 1.0
     ext = [(xs[0] - dx / 2) / lf, (xs[-1] + dx / 2) / lf, (ys[0] - dy / 2) / lf, (ys[-1] + dy / 2) / lf]
     img = ax.imshow(np.ma.masked_invalid(speed_map.speed / sf), origin="lower", extent=ext, cmap="viridis",
                     vmin=0.0, vmax=max(vmax / sf, 1e-12), interpolation="nearest", aspect="equal")
-    fig.colorbar(img, ax=ax, label=f"worst-direction speed ({sname})")
+    fig.colorbar(img, ax=ax, label=axis_label("worst-direction speed", sname))
     dead = np.ma.masked_where(~speed_map.dead, np.ones_like(speed_map.speed))
     ax.imshow(dead, origin="lower", extent=ext, cmap=ListedColormap(["0.6"]), vmin=0, vmax=1,
               interpolation="nearest", aspect="equal")
@@ -82,10 +70,12 @@ def plot_speed_map(speed_map, *, workspace=None, title=None, directions=True, ax
         segs_y = np.stack([Y - L * d[:, 1], Y + L * d[:, 1], np.full_like(Y, np.nan)], axis=1).ravel()
         ax.plot(segs_x, segs_y, color="crimson", lw=0.8)
         handles.append(Line2D([], [], color="crimson", lw=0.8, label="blocked direction"))
+    if actuator is not None:
+        draw_outlines(ax, actuator, 1.0 / lf)
     if workspace is not None:
         _outline(ax, workspace, lf)
-    ax.set_xlabel(f"x ({lname})")
-    ax.set_ylabel(f"y ({lname})")
+    ax.set_xlabel(axis_label("x", lname))
+    ax.set_ylabel(axis_label("y", lname))
     ax.set_title(title or "single-body worst-direction speed")
     ax.legend(handles=handles, loc="upper right", fontsize="small", framealpha=0.8)
     return fig
@@ -112,7 +102,8 @@ def plot_count_curve(curves, *, title=None, ax=None):
     Returns
     -------
     matplotlib.figure.Figure
-        Points with 95 % Wilson intervals; a dashed line per curve at the counting limit K/2.
+        Points with 95 % Wilson intervals; a dashed line per curve at its counting limit
+        (:func:`fieldplan.steer.counting_limit`).
     """
     if isinstance(curves, CountCurve):
         curves = {"": curves}
@@ -126,20 +117,23 @@ def plot_count_curve(curves, *, title=None, ax=None):
     m = len(curves)
     for i, (name, c) in enumerate(curves.items()):
         color = f"C{i}"
-        label = f"{name + ': ' if name else ''}K = {c.size} ({c.mode}), {c.trials} trials per N"
+        label = (f"{name + ': ' if name else ''}{'K' if c.mode == 'linear' else 'M'} = {c.size} ({c.mode}), "
+                 f"{c.trials} trials per N; limit {counting_rule(c.mode)}")
         yerr = np.vstack([c.fraction - c.low, c.high - c.fraction])
         # Dodge the curves sideways a little so equal curves stay visible.
         x = c.counts + 0.08 * (i - (m - 1) / 2)
         ax.errorbar(x, c.fraction, yerr=yerr, marker="o", capsize=3, color=color, label=label)
         limit = c.rank_limit if np.isfinite(c.rank_limit) else c.counting_limit
-        ax.axvline(limit, color=color, ls="--", lw=0.8)
-    ax.plot([], [], color="0.3", ls="--", lw=0.8, label="counting limit: K/2, or field rank/2 if lower")
+        if limit <= np.max(c.counts) + 1:   # a limit far beyond the counts would squash the curves
+            ax.axvline(limit, color=color, ls="--", lw=0.8)
+    ax.plot([], [], color="0.3", ls="--", lw=0.8,
+            label="counting limit: K/2 (K channels) or (M - 1)/2 (M primitives), or field rank/2 if lower")
     # Say what the whiskers are: a binomial proportion's 95 % Wilson score interval over the trials.
     ax.errorbar([], [], yerr=[], color="0.3", capsize=3, ls="none", label="bars: 95 % Wilson interval")
     ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.grid(alpha=0.3)
-    ax.set_xlabel("number of bodies N")
-    ax.set_ylabel("fraction of configurations steerable (1)")
+    ax.set_xlabel(axis_label("number of bodies N", "1"))
+    ax.set_ylabel(axis_label("fraction of configurations steerable", "1"))
     ax.set_ylim(-0.03, 1.03)
     ax.set_title(title or "how many bodies can be steered at once")
     ax.legend(fontsize="small")

@@ -119,7 +119,8 @@ class TrackIssue:
         ``"missing"`` (row without position), ``"gap"`` (frames missing in time), ``"jump"``
         (track split at an implausible step), ``"outlier"`` (one frame dropped), ``"irregular"``
         (uneven frame intervals), ``"short"`` (segment too short to differentiate, dropped),
-        ``"sorted"`` (rows were out of time order and were sorted on request).
+        ``"sorted"`` (rows were out of time order and were sorted on request), ``"skipped"`` (an
+        unreadable row skipped with ``skip_bad_rows``; ``time`` is NaN and ``track`` empty).
     track : str
     time : float
         s, time of the event (start of a gap, frame before a jump, the outlier's frame).
@@ -136,6 +137,8 @@ class TrackIssue:
 
     def __str__(self):
         where = f"line {self.line}, " if self.line is not None else ""
+        if self.kind == "skipped":
+            return f"skipped {where.rstrip(', ')}: {self.message}"
         return f"{self.kind}: {where}track {self.track!r} at t = {self.time:.6g} s: {self.message}"
 
 
@@ -346,7 +349,58 @@ def _unit_factor(name, unit, kind, path):
     return to_si(f"1 {unit}", kind, name=f"{path}: column {name!r} [{unit}]")
 
 
-def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
+_BINARY_HINT = ("the file does not look like a CSV text file (a binary file, or text in another encoding: "
+                "export the tracks as UTF-8 CSV)")
+
+
+def _read_lines(path, skip, bad):
+    """``[(line, cells)]`` of a CSV file, one record per physical line.
+
+    A tracking file never needs a cell spanning lines, so reading line by line lets an unterminated
+    quote or an undecodable byte be reported at its own line (or skipped, recording ``(line,
+    reason)`` in ``bad``) instead of swallowing the rest of the file.
+    """
+    if not os.path.isfile(path):
+        raise TrackingDataError("is not a regular file (a device or a pipe cannot be read as tracking data).",
+                                path=path)
+    with open(path, "rb") as fh:
+        head = fh.read(65536)
+        if b"\0" in head and not skip:     # refuse a binary file before reading all of it
+            nul = head.find(b"\0")
+            raise TrackingDataError(f"{_BINARY_HINT}; it holds NUL bytes.", path=path,
+                                    line=head.count(b"\n", 0, nul) + 1)
+        blob = head + fh.read()
+    if blob.startswith(b"\xef\xbb\xbf"):
+        blob = blob[3:]
+    nul = blob.find(b"\0")
+    if nul >= 0 and not skip:
+        raise TrackingDataError(f"{_BINARY_HINT}; it holds NUL bytes.", path=path, line=blob.count(b"\n", 0, nul) + 1)
+    try:
+        texts = blob.decode("utf-8").split("\n")
+    except UnicodeDecodeError as exc:
+        if not skip:
+            raise TrackingDataError(f"{_BINARY_HINT}; byte {blob[exc.start]:#04x} is not UTF-8.", path=path,
+                                    line=blob.count(b"\n", 0, exc.start) + 1) from None
+        texts = [b.decode("utf-8", errors="replace") for b in blob.split(b"\n")]
+    out = []
+    for ln, text in enumerate(texts, 1):
+        text = text[:-1] if text.endswith("\r") else text
+        if "\0" in text or "\ufffd" in text:
+            bad.append((ln, "not UTF-8 text (binary data)"))
+            continue
+        try:
+            cells = next(csv.reader([text], strict=True), [])
+        except csv.Error as exc:
+            reason = f"cannot be read as CSV ({exc}); a quoted cell must close on its own line"
+            if not skip:
+                raise TrackingDataError(reason + ".", path=path, line=ln) from None
+            bad.append((ln, reason))
+            continue
+        out.append((ln, cells))
+    return out
+
+
+def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True, skip_bad_rows=False):
     """Read a tracking CSV, check it, and split it into clean segments.
 
     Parameters
@@ -364,6 +418,10 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
         sorted and the event is reported.
     warn : bool
         Emit one :class:`TrackingWarning` summarising the issues found.
+    skip_bad_rows : bool
+        Skip data rows that cannot be read (bad quoting or bytes, wrong number of cells, a
+        non-number, an empty required cell) instead of raising at the first; each one skipped is
+        reported as a ``"skipped"`` :class:`TrackIssue` naming its line. The header must be readable.
 
     Returns
     -------
@@ -393,11 +451,14 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
     units = dict(units or {})
     if not os.path.exists(path):
         raise TrackingDataError("file not found.", path=path)
-    with open(path, newline="", encoding="utf-8-sig") as fh:
-        reader = csv.reader(fh)
-        # line_num after reading a record is the file line it ended on (quoted cells may span lines).
-        raw = [(reader.line_num, r) for r in reader]
+    if os.path.isdir(path):
+        raise TrackingDataError("is a folder, not a tracking CSV file.", path=path)
+    bad = []    # (line, reason) of rows skipped with skip_bad_rows
+    raw = _read_lines(path, skip_bad_rows, bad)
     rows = [(ln, r) for ln, r in raw if r and any(c.strip() for c in r) and not r[0].lstrip().startswith("#")]
+    if bad and (not rows or bad[0][0] < rows[0][0]):
+        raise TrackingDataError(f"{_BINARY_HINT}: line {bad[0][0]} {bad[0][1]}, before any header could be read.",
+                                path=path, line=bad[0][0])
     if not rows:
         raise TrackingDataError(
             "the file is empty (no header and no data rows); expected a header such as "
@@ -405,6 +466,9 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
     hline, hcells = rows[0]
     header = _parse_header(hcells, path, hline)
     body = rows[1:]
+    if not body and bad:
+        raise TrackingDataError(f"every data row is unreadable (first: line {bad[0][0]}, {bad[0][1]}).",
+                                path=path, line=bad[0][0])
     if not body:
         raise TrackingDataError("the file has a header but no data rows.", path=path, line=hline)
     names = [n for n, _ in header]
@@ -459,36 +523,48 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
     cells = []
     for ln, r in body:
         if len(r) != width:
-            raise TrackingDataError(f"row has {len(r)} cells but the header has {width}.", path=path, line=ln)
+            reason = f"row has {len(r)} cells but the header has {width}"
+            if not skip_bad_rows:
+                raise TrackingDataError(reason + ".", path=path, line=ln)
+            bad.append((ln, reason))
+            r = [""] * width        # dropped below with the other bad rows
         cells.append([c.strip() for c in r])
     table = np.array(cells, dtype=object).reshape(n_rows, width)
+    drop = np.zeros(n_rows, bool)
+    drop[np.isin(lines, [ln for ln, _ in bad])] = True
+
+    def fail(i, reason, name):
+        """Raise for row i, or mark it to be skipped."""
+        if not skip_bad_rows:
+            raise TrackingDataError(reason, path=path, line=int(lines[i]), column=name)
+        if not drop[i]:
+            drop[i] = True
+            bad.append((int(lines[i]), f"column {name!r}: {reason.rstrip('.')}"))
 
     def numbers(name, allow_empty):
         colv = table[:, col[name]]
         empty = (colv == "") | np.isin(np.char.lower(colv.astype(str)), ("nan", "na"))
-        if not allow_empty and np.any(empty):
-            raise TrackingDataError("empty value.", path=path, line=int(lines[np.argmax(empty)]), column=name)
+        if not allow_empty:
+            for i in np.flatnonzero(empty & ~drop):
+                fail(i, "empty value.", name)
         out = np.full(n_rows, np.nan)
+        ok = ~empty & ~drop
         try:
-            out[~empty] = colv[~empty].astype(float)
+            out[ok] = colv[ok].astype(float)
         except ValueError:
-            # Find the first offending cell to name its line.
-            for i in np.flatnonzero(~empty):
+            # Find the offending cells to name their lines.
+            for i in np.flatnonzero(ok):
                 try:
-                    float(colv[i])
+                    out[i] = float(colv[i])
                 except ValueError:
-                    raise TrackingDataError(f"{colv[i]!r} is not a number.", path=path, line=int(lines[i]),
-                                            column=name) from None
-        bad = ~empty & ~np.isfinite(out)
-        if np.any(bad):
-            i = int(np.argmax(bad))
-            raise TrackingDataError(f"{colv[i]!r} is not finite.", path=path, line=int(lines[i]), column=name)
+                    fail(i, f"{colv[i]!r} is not a number.", name)
+        for i in np.flatnonzero(ok & ~drop & ~np.isfinite(out)):
+            fail(i, f"{colv[i]!r} is not finite.", name)
         return out
 
     track = table[:, col["track"]].astype(str)
-    empty_track = np.flatnonzero(track == "")
-    if len(empty_track):
-        raise TrackingDataError("empty track id.", path=path, line=int(lines[empty_track[0]]), column="track")
+    for i in np.flatnonzero((track == "") & ~drop):
+        fail(i, "empty track id.", "track")
     time = numbers("time", False) * tf
     x = numbers("x", True) * xf
     y = numbers("y", True) * yf
@@ -497,20 +573,31 @@ def read_tracks(path, *, units=None, max_jump=None, sort=False, warn=True):
         values[:, j] = numbers(n, False) * factors[j]
     if "primitive" in names:
         prim = table[:, col["primitive"]].astype(str)
-        bad = np.flatnonzero(prim == "")
-        if len(bad):
-            raise TrackingDataError("empty primitive name.", path=path, line=int(lines[bad[0]]), column="primitive")
+        for i in np.flatnonzero((prim == "") & ~drop):
+            fail(i, "empty primitive name.", "primitive")
     else:
         prim = np.array([_setting_name(channels, v) for v in values], dtype=object).astype(str)
     kind = table[:, col["kind"]].astype(object) if "kind" in names else np.full(n_rows, None, dtype=object)
     if "kind" in names:
-        bad = np.flatnonzero(kind == "")
-        if len(bad):
-            raise TrackingDataError("empty body kind.", path=path, line=int(lines[bad[0]]), column="kind")
+        for i in np.flatnonzero((kind == "") & ~drop):
+            fail(i, "empty body kind.", "kind")
+    if drop.any():
+        keep = ~drop
+        if not keep.any():
+            raise TrackingDataError(f"every data row is unreadable (first: line {bad[0][0]}, {bad[0][1]}).",
+                                    path=path, line=bad[0][0])
+        track, time, x, y, values, prim, kind, lines = (a[keep] for a in (track, time, x, y, values, prim, kind,
+                                                                           lines))
 
     prim_values = _primitive_values(prim, values, channels, lines, path)
-    return _clean(track, time, np.column_stack([x, y]), prim, kind, lines, tuple(channels), prim_values,
-                  path, max_jump=max_jump, sort=sort, warn=warn)
+    data = _clean(track, time, np.column_stack([x, y]), prim, kind, lines, tuple(channels), prim_values,
+                  path, max_jump=max_jump, sort=sort, warn=False)
+    skipped = [TrackIssue("skipped", "", float("nan"), ln, reason)
+               for ln, reason in sorted(bad)]
+    data.issues = skipped + list(data.issues)
+    if warn:
+        _warn_issues(data)
+    return data
 
 
 def _setting_name(channels, v):
@@ -635,13 +722,19 @@ def _clean(track, time, xy, prim, kind, lines, channels, prim_values, path, *, m
         raise TrackingDataError("no frame with a position is left after removing missing positions.", path=src)
     data = TrackingData(track[rows].astype(str), time[rows], xy[rows], prim[rows].astype(str),
                         kind[rows], segment, lines[rows], channels, prim_values, issues, src)
-    if warn and any(i.kind != "sorted" for i in issues):
+    if warn:
+        _warn_issues(data)
+    return data
+
+
+def _warn_issues(data):
+    """One TrackingWarning summarising the issues of ``data`` (a requested sort alone is not one)."""
+    if any(i.kind != "sorted" for i in data.issues):
         counts = data.summary()["issues"]
         text = ", ".join(f"{v} {k}" for k, v in counts.items())
-        first = next(i for i in issues if i.kind != "sorted")
-        warnings.warn(f"{src or 'tracking data'}: {text} (first: {first}); see TrackingData.issues.",
-                      TrackingWarning, stacklevel=3)
-    return data
+        first = next(i for i in data.issues if i.kind != "sorted")
+        warnings.warn(f"{data.source or 'tracking data'}: {text} (first: {first}); see TrackingData.issues.",
+                      TrackingWarning, stacklevel=4)
 
 
 def _step_deviation(p):

@@ -8,6 +8,7 @@ import numpy as np
 import shapely
 from shapely.geometry import MultiPolygon, Point, Polygon, box
 
+from .body import check_positions
 from .errors import WorkspaceError
 from .medium import Medium
 
@@ -21,7 +22,11 @@ def rectangle(xmin, ymin, xmax, ymax):
     return box(xmin, ymin, xmax, ymax)
 
 
-def circle(center, radius, resolution=32):
+#: Segments per quarter circle of the polygon a circle is drawn as.
+CIRCLE_RESOLUTION = 32
+
+
+def circle(center, radius, resolution=CIRCLE_RESOLUTION):
     """Disc of ``radius`` m around ``center`` (m) as a shapely Polygon (``4*resolution`` vertices)."""
     if not radius > 0:
         raise WorkspaceError(f"circle radius must be > 0 m, got {radius}.")
@@ -39,6 +44,58 @@ def polygon(points):
     if poly.area <= 0:
         raise WorkspaceError("polygon has zero area.")
     return poly
+
+
+def _disjoint_union(geoms):
+    """The union of polygons ``geoms`` (array) as a MultiPolygon of disjoint parts.
+
+    An STRtree finds which polygons touch or overlap; only those groups are merged with
+    ``union_all`` (one call each), the rest are kept as they are. For many small, mostly separate
+    obstacles this is far faster than one ``union_all`` of everything.
+    """
+    parts = shapely.get_parts(np.asarray(geoms, dtype=object))
+    parts = parts[~shapely.is_empty(parts)]
+    if len(parts) == 0:
+        return Polygon()
+    tree = shapely.STRtree(parts)
+    i, j = tree.query(parts, predicate="intersects")
+    keep = i < j
+    if not keep.any():
+        return shapely.multipolygons(parts)
+    from scipy.sparse import coo_matrix  # noqa: PLC0415
+    from scipy.sparse.csgraph import connected_components  # noqa: PLC0415
+
+    n = len(parts)
+    _, label = connected_components(coo_matrix((np.ones(keep.sum()), (i[keep], j[keep])), shape=(n, n)),
+                                    directed=False)
+    order = np.argsort(label, kind="stable")
+    cuts = np.flatnonzero(np.diff(label[order])) + 1
+    merged = []
+    for group in np.split(order, cuts):
+        merged.append(parts[group[0]] if len(group) == 1 else shapely.union_all(parts[group]))
+    out = shapely.get_parts(np.asarray(merged, dtype=object))
+    return shapely.multipolygons(out[shapely.get_type_id(out) == 3])
+
+
+def _cut_out(region, solid):
+    """``region`` minus the disjoint polygons of ``solid`` (a MultiPolygon from :func:`_disjoint_union`).
+
+    Parts lying strictly inside a polygonal ``region`` without holes of their own simply become holes
+    of it (no overlay needed); only the others go through one ``difference``.
+    """
+    parts = shapely.get_parts(solid)
+    if len(parts) == 0 or not isinstance(region, Polygon) or region.is_empty:
+        return region.difference(solid)
+    simple = shapely.contains_properly(region, parts) & (shapely.get_num_interior_rings(parts) == 0)
+    if simple.any() and region.interiors:
+        # holes of the region itself may touch parts: leave those to the overlay
+        holes = shapely.multipolygons([Polygon(r) for r in region.interiors])
+        simple &= ~shapely.intersects(holes, parts)
+    rest = parts[~simple]
+    out = Polygon(region.exterior, list(region.interiors) + list(shapely.get_exterior_ring(parts[simple])))
+    if len(rest):
+        out = out.difference(shapely.multipolygons(rest))
+    return out
 
 
 class Workspace:
@@ -71,13 +128,19 @@ class Workspace:
             boundary = rectangle(*boundary)
         if not isinstance(boundary, Polygon) or not boundary.is_valid or boundary.area <= 0:
             raise WorkspaceError("workspace boundary must be a valid polygon with positive area.")
-        obs = []
-        for i, o in enumerate(obstacles):
-            if not isinstance(o, (Polygon, MultiPolygon)) or not o.is_valid or o.area <= 0:
-                raise WorkspaceError(f"obstacle {i} is not a valid polygon with positive area.")
-            obs.append(o)
+        obs = list(obstacles)
+        arr = np.empty(len(obs), dtype=object)
+        for i, o in enumerate(obs):          # one by one: numpy would unpack a tuple given by mistake
+            arr[i] = o
+        kind_ok = np.fromiter((isinstance(o, (Polygon, MultiPolygon)) for o in obs), bool, len(obs))
+        ok = kind_ok.copy()
+        if kind_ok.any():            # checked all at once: shapely 2 works on arrays of geometries
+            ok[kind_ok] = shapely.is_valid(arr[kind_ok]) & (shapely.area(arr[kind_ok]) > 0)
+        if not ok.all():
+            raise WorkspaceError(f"obstacle {int(np.argmin(ok))} is not a valid polygon with positive area.")
         self.boundary = boundary
         self.obstacles = tuple(obs)
+        self._obstacle_array = arr
         self.medium = medium if medium is not None else Medium()
         free = self.free_space(0.0)
         if free.is_empty:
@@ -98,31 +161,43 @@ class Workspace:
 
     @functools.cached_property
     def _solid(self):
-        return shapely.union_all(self.obstacles) if self.obstacles else Polygon()
+        return _disjoint_union(self._obstacle_array) if self.obstacles else Polygon()
+
+    @functools.cached_property
+    def obstacle_index(self):
+        """``shapely.STRtree`` of :attr:`obstacles` (query it for the obstacles near a point or shape)."""
+        return shapely.STRtree(self._obstacle_array)
 
     @functools.lru_cache(maxsize=32)
     def free_space(self, radius):
         """Region where the centre of a body of ``radius`` m may be (boundary shrunk, obstacles grown)."""
         inner = self.boundary.buffer(-float(radius)) if radius > 0 else self.boundary
         if self.obstacles:
-            grown = self._solid.buffer(float(radius)) if radius > 0 else self._solid
-            inner = inner.difference(grown)
+            if radius > 0:
+                # Grow each obstacle on its own (vectorised), then merge the ones that now overlap:
+                # buffering one union of many obstacles is far slower.
+                grown = _disjoint_union(shapely.buffer(shapely.get_parts(self._solid), float(radius)))
+            else:
+                grown = self._solid
+            inner = _cut_out(inner, grown)
         shapely.prepare(inner)
         return inner
 
     def walls(self):
-        """All wall lines (boundary and obstacle outlines) as one shapely geometry."""
-        parts = [self.boundary.exterior] + [shapely.boundary(o) for o in self.obstacles]
-        return shapely.union_all(parts)
+        """All wall lines (boundary and the outlines of the solid region) as one shapely geometry."""
+        rings = [self.boundary.exterior]
+        if self.obstacles:
+            rings += list(shapely.get_rings(shapely.get_parts(self._solid)))
+        return shapely.multilinestrings(rings) if len(rings) > 1 else rings[0]
 
     def contains(self, xy, radius=0.0):
         """Whether each centre in ``xy`` (n, 2) m is free for a body of ``radius`` m, bool (n,)."""
-        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        xy = check_positions(xy, "xy", error=WorkspaceError)
         return shapely.contains_xy(self.free_space(float(radius)), xy[:, 0], xy[:, 1])
 
     def clearance(self, xy):
         """Distance (m) from each point to the nearest wall or obstacle; negative inside a solid."""
-        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        xy = check_positions(xy, "xy", error=WorkspaceError)
         pts = shapely.points(xy)
         d = shapely.distance(self._walls_geom, pts)
         inside = self.contains(xy, 0.0)
@@ -150,7 +225,7 @@ class Workspace:
             Unit vectors; the keep-out half-plane for a body of radius r at x is
             ``normals . (x - points) >= r``.
         """
-        xy = np.atleast_2d(np.asarray(xy, dtype=float))
+        xy = check_positions(xy, "xy", error=WorkspaceError)
         pts = shapely.points(xy)
         near = shapely.get_coordinates(shapely.shortest_line(self._walls_geom, pts))
         wall_pts = near[0::2]
@@ -165,7 +240,7 @@ class Workspace:
 
     def project(self, xy, radius):
         """Move points outside the free space of ``radius`` to its nearest point (m); returns (xy, moved)."""
-        xy = np.array(np.atleast_2d(xy), dtype=float)
+        xy = check_positions(xy, "xy", error=WorkspaceError).copy()
         free = self.free_space(float(radius))
         ok = shapely.contains_xy(free, xy[:, 0], xy[:, 1])
         if np.all(ok):

@@ -89,16 +89,21 @@ def write(tmp_path, text, name="scenario.yaml"):
     return p
 
 
+def _env(**extra):
+    return dict(os.environ, MPLBACKEND="Agg", PYTHONPATH=os.pathsep.join(
+        [str(ROOT)] + ([os.environ["PYTHONPATH"]] if os.environ.get("PYTHONPATH") else [])), **extra)
+
+
 @pytest.fixture(scope="module")
 def base_run(tmp_path_factory):
     """One real run through the console script in a subprocess (shared by the end-to-end checks)."""
     d = tmp_path_factory.mktemp("e2e")
     scen = write(d, GOOD.replace("  plots: false", "  plots: [inputs]\n  resample_rate: 50 Hz"))
     out = d / "out"
-    exe = pathlib.Path(sys.executable).with_name("fieldplan")
-    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "fieldplan.cli"]
+    # `python -m` with this checkout first on the path, so the code under test is the one beside the tests
+    cmd = [sys.executable, "-m", "fieldplan.cli"]
     proc = subprocess.run(cmd + ["run", str(scen), "--out", str(out)], capture_output=True, text=True,
-                          env=dict(os.environ, MPLBACKEND="Agg"), timeout=300)
+                          env=_env(), timeout=300)
     return proc, out, scen, cmd
 
 
@@ -136,7 +141,7 @@ def test_bad_file_through_the_real_command(tmp_path, base_run):
     _, _, _, cmd = base_run
     path = write(tmp_path, GOOD.replace("    radius: 5 um", "    radius: 5 A"))
     proc = subprocess.run(cmd + ["run", str(path), "--out", str(tmp_path / "o")], capture_output=True, text=True,
-                          timeout=120)
+                          timeout=120, env=_env())
     assert proc.returncode == 2
     assert "Traceback" not in proc.stderr
     assert f"{path}:{GOOD.splitlines().index('    radius: 5 um') + 1}" in proc.stderr
@@ -151,6 +156,7 @@ def test_end_to_end_outputs_exist_parse_and_agree(base_run):
     assert str(out) in proc.stdout                  # says where the outputs are
     summary = json.loads((out / "summary.json").read_text())
     assert sorted(os.listdir(out)) == sorted(summary["files"])
+    assert ".fieldplan-output" in summary["files"]            # the marker: fieldplan wrote this folder
     for f in ("schedule.csv", "schedule.json", "schedule_resampled.csv", "trajectories.csv", "inputs.png"):
         assert (out / f).stat().st_size > 0
     assert proc.returncode == summary["exit_code"]
@@ -193,11 +199,19 @@ def test_existing_folder_is_refused_without_force(base_run, capsys):
 
 
 def test_replay_a_schedule_and_force(base_run, tmp_path, capsys):
-    """--schedule plays a saved schedule on the truth model; --force replaces the folder whole."""
+    """--schedule plays a saved schedule on the truth model; --force replaces a folder fieldplan wrote whole."""
+    from fieldplan.export import MARKER
+
     _, out, scen, _ = base_run
     target = tmp_path / "replay"
     target.mkdir()
     (target / "stale.txt").write_text("old")
+    args = ["run", str(scen), "--schedule", str(out / "schedule.csv"), "--out", str(target), "--force",
+            "--trials", "1", "--no-plots"]
+    assert main(args) == 2                              # no marker: not fieldplan's folder, never replaced
+    assert "not written by fieldplan" in capsys.readouterr().err
+    assert sorted(os.listdir(target)) == ["stale.txt"]
+    (target / MARKER).write_text("{}")
     code = main(["run", str(scen), "--schedule", str(out / "schedule.csv"), "--out", str(target), "--force",
                  "--trials", "1", "--no-plots"])
     assert code in (0, 1)

@@ -84,17 +84,21 @@ def test_failure_while_writing_leaves_no_partial_folder(tmp_path, monkeypatch):
     with pytest.raises(RuntimeError):
         write_outputs(tmp_path / "out", run)
     assert listing(tmp_path) == []
-    # an existing folder survives a failed --force rewrite untouched
-    (tmp_path / "out").mkdir()
-    (tmp_path / "out" / "keep.txt").write_text("previous run")
+    # an earlier output folder survives a failed --force rewrite untouched
+    monkeypatch.undo()
+    write_outputs(tmp_path / "out", run)
+    (tmp_path / "out" / "summary.json").write_text("previous run")
+    before = listing(tmp_path / "out")
+    monkeypatch.setattr(export, "write_trajectories", boom)
     with pytest.raises(RuntimeError):
         write_outputs(tmp_path / "out", run, force=True)
-    assert listing(tmp_path) == ["out"] and listing(tmp_path / "out") == ["keep.txt"]
+    assert listing(tmp_path) == ["out"] and listing(tmp_path / "out") == before
+    assert (tmp_path / "out" / "summary.json").read_text() == "previous run"
     with pytest.raises(OutputExistsError):
         write_outputs(tmp_path / "out", run)
     monkeypatch.undo()
     files = write_outputs(tmp_path / "out", run, force=True)
-    assert "keep.txt" not in listing(tmp_path / "out") and os.path.exists(files["summary"])
+    assert json.loads(open(files["summary"]).read())["format"] == "fieldplan-summary"
 
 
 # --------------------------------------------------------------------------------------------

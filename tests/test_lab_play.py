@@ -125,8 +125,10 @@ def test_play_dry_run_against_the_scenario_simulator(tmp_path, capsys):
 
 
 @pytest.mark.skipif(sys.platform == "win32", reason="POSIX signals")
-def test_sigint_to_a_running_play_leaves_the_instrument_idle(rig):
-    """A real Ctrl-C (SIGINT) to `fieldplan play`: exit 130, and the log ends with the idle commands."""
+@pytest.mark.parametrize("sig", ["SIGINT", "SIGTERM"])
+def test_a_signal_to_a_running_play_leaves_the_instrument_idle(rig, sig):
+    """A real Ctrl-C (SIGINT) or SIGTERM to `fieldplan play`: exit 128 + the signal number, and the log
+    ends with the idle commands."""
     sched = rig["dir"] / "schedule.json"
     schedule(n=40, duration=0.1).write_json(sched, limits=LIMITS)          # 4 s
     log = rig["dir"] / "sent.csv"
@@ -139,12 +141,12 @@ def test_sigint_to_a_running_play_leaves_the_instrument_idle(rig):
             if line.startswith("  tone_amp"):
                 break
         time.sleep(0.8)
-        proc.send_signal(signal.SIGINT)
+        proc.send_signal(getattr(signal, sig))
         out, err = proc.communicate(timeout=60)
     finally:
         if proc.poll() is None:
             proc.kill()
-    assert proc.returncode == 130, err
+    assert proc.returncode == 128 + getattr(signal, sig), err
     rows = read_input_log(log)
     assert 2 < len(rows.times) < 42                                         # stopped part-way
     assert rows.primitive[-1] == "idle" and rows.values[-1][1] == 0.0

@@ -146,14 +146,14 @@ def test_accepted_iterations_never_raise_the_true_cost():
         H = ctrl.horizon
         starts_W = [np.tile(ctrl._idle_rate, (H, 1))]
         if prev_W is not None:
-            starts_W.append(np.vstack([prev_W[1:], prev_W[-1:]]))
+            starts_W.append(prev_W)             # the previous plan, already shifted by the controller
         played_now = ctrl._prev.copy()
         ctrl._prev = prev_played if prev_played is not None else ctrl._idle_rate.copy()
         Ws = ctrl._project(np.asarray(starts_W), lower, upper, rows, rhs)
         X, _, _, _, pushed = ctrl._rollout(p, Ws)
         start_cost = ctrl._merit(X, Ws, pushed)
-        Xk, _, _, _, pk = ctrl._rollout(p, ctrl._W[None])
-        kept = ctrl._merit(Xk, ctrl._W[None], pk)[0]
+        Xk, _, _, _, pk = ctrl._rollout(p, ctrl.plan_weights[None])
+        kept = ctrl._merit(Xk, ctrl.plan_weights[None], pk)[0]
         ctrl._prev = played_now
         assert kept <= start_cost.min() * (1 + 1e-12)
         p = ctrl.predict(p, segs)
@@ -217,3 +217,31 @@ def test_step_method_is_still_available():
 def test_settings_reject_an_unknown_method():
     with pytest.raises(ValueError, match="method"):
         PlanSettings(method="fastest")
+
+
+def test_scenario_planner_keys_are_checked_with_file_and_line(tmp_path):
+    from fieldplan.errors import ScenarioError
+    from fieldplan.scenario import load_scenario
+
+    text = open("scenarios/demo.yaml").read().replace("  tolerance: 15 um ", "  method: horizn\n  horizon: lots\n"
+                                                      "  tolerance: 15 um ")
+    path = tmp_path / "typo.yaml"
+    path.write_text(text)
+    with pytest.raises(ScenarioError) as exc:
+        load_scenario(str(path))
+    msg = str(exc.value)
+    assert "typo.yaml" in msg and "planner.method" in msg and "horizon" in msg and "planner.horizon" in msg
+    good = tmp_path / "good.yaml"
+    good.write_text(open("scenarios/demo.yaml").read().replace(
+        "  tolerance: 15 um ", "  method: step\n  horizon: 4\n  table_resolution: 5 um\n  tolerance: 15 um "))
+    sc = load_scenario(str(good))
+    st = sc.plan_settings()
+    assert sc.planner["method"] == "step" and sc.planner["horizon"] == 4
+    assert sc.planner["table_resolution"] == pytest.approx(5e-6)
+    assert st.method == "step" and st.horizon == 4
+
+
+def test_a_route_grid_too_fine_is_a_clear_error():
+    ctrl = Controller(ACT4, [BEAD], WS, [[7e-4, 6e-4]], settings=PlanSettings(route_resolution=1e-7))
+    with pytest.raises(ValueError, match="route_resolution .* coarser"):
+        ctrl.prepare([[3e-4, 3e-4]])

@@ -62,3 +62,33 @@ def test_sample_is_reproducible_and_separated():
     assert ws.contains(a, 1e-5).all()
     d = np.linalg.norm(a[:, None] - a[None], axis=2) + np.eye(10)
     assert d.min() >= 5e-5
+
+
+def test_obstacles_checked_all_at_once_still_name_the_bad_one():
+    from fieldplan.errors import WorkspaceError
+    from fieldplan.workspace import Workspace, rectangle
+
+    good = rectangle(0.1, 0.1, 0.2, 0.2)
+    for bad in ((0, 0, 1, 1), "square", shapely_bowtie()):
+        with pytest.raises(WorkspaceError, match="obstacle 1 "):
+            Workspace((0, 0, 1, 1), [good, bad])
+
+
+def test_overlapping_obstacles_are_merged_into_one_solid():
+    import shapely
+
+    from fieldplan.workspace import Workspace, rectangle
+
+    ws = Workspace((0, 0, 1, 1), [rectangle(0.1, 0.1, 0.3, 0.3), rectangle(0.2, 0.2, 0.4, 0.4),
+                                  rectangle(0.6, 0.6, 0.7, 0.7)])
+    assert ws.free_space(0.0).area == pytest.approx(1 - (0.04 + 0.04 - 0.01) - 0.01)
+    # grown by 0.02 m the merged pair and the far square are two holes of one connected region
+    grown = ws.free_space(0.02)
+    assert grown.is_valid and grown.geom_type == "Polygon" and len(grown.interiors) == 2
+    assert len(ws.obstacle_index.query(shapely.Point(0.25, 0.25), predicate="within")) == 2
+
+
+def shapely_bowtie():
+    from shapely.geometry import Polygon
+
+    return Polygon([(0.5, 0.5), (0.6, 0.6), (0.6, 0.5), (0.5, 0.6)])

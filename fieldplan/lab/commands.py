@@ -224,4 +224,7 @@ def cmd_play(args):
                                                                for i, e in enumerate(err)))
     if rep.log:
         _say(args, f"log: {rep.log}")
-    return 130 if rep.interrupted else EXIT_OK
+    if rep.interrupted:
+        # Ctrl-C: 130; a terminating signal the command turned into an interrupt: 128 + its number.
+        return 128 + rep.signal if rep.signal else 130
+    return EXIT_OK

@@ -42,6 +42,9 @@ class PlayReport:
     message : str
     log : str or None
         The driver's log file.
+    signal : int or None
+        The signal that stopped it, when a handler turned one into a ``KeyboardInterrupt`` with a
+        ``signum`` (the ``fieldplan`` command does so for SIGTERM and SIGHUP).
     """
 
     completed: bool
@@ -52,6 +55,7 @@ class PlayReport:
     overruns: list = field(default_factory=list)
     message: str = ""
     log: str | None = None
+    signal: int | None = None
 
 
 def play(schedule, driver, *, limits=None, clock=None, on_segment=None):
@@ -93,6 +97,7 @@ def play(schedule, driver, *, limits=None, clock=None, on_segment=None):
     clock = clock or RealTimeClock()
     sent = 0
     interrupted = False
+    signum = None
     driver.guard.horizon = schedule.duration
     with driver:
         try:
@@ -108,13 +113,14 @@ def play(schedule, driver, *, limits=None, clock=None, on_segment=None):
                     on_segment(j, seg)
             if segs:
                 clock.wait(schedule.end)       # hold the last segment to its end, then idle
-        except KeyboardInterrupt:
+        except KeyboardInterrupt as exc:
             interrupted = True
+            signum = getattr(exc, "signum", None)
     n = schedule.n_segments
     msg = (f"interrupted after {sent} of {n} segment(s); the instrument was set to the idle input" if interrupted
            else f"played {sent} segment(s), {schedule.duration:.4g} s; the instrument is at the idle input")
     return PlayReport(sent == n and not interrupted, interrupted, sent, np.asarray(clock.latency), clock.jitter(),
-                      list(clock.overruns), msg, driver.log_path)
+                      list(clock.overruns), msg, driver.log_path, signum)
 
 
 def load_for_play(path, *, limits=None, channels=None):

@@ -90,6 +90,7 @@ class ControllerBase:
         else:
             ok = speed > 0
             T = float(np.median(delta[ok] / speed[ok])) if ok.any() else 1.0
+            T = max(T, self._min_period())
         T = self._round_period(T)
         self.period = T
         self.length_unit = float(np.median(delta))
@@ -113,6 +114,10 @@ class ControllerBase:
                             "(see notes)" if self.mode == "timeshare" else
                             "no input is left to plan with: the declared limits pin every channel")
         return delta, speed
+
+    def _min_period(self):
+        """Shortest automatic period, s (0 here; a controller may ask for more)."""
+        return 0.0
 
     def _basis(self, xy_sets):
         """Field basis at several position sets of all bodies, in one vectorised call."""

@@ -45,6 +45,7 @@ import time
 import numpy as np
 
 from ..errors import WorkspaceError
+from ..units import format_quantity
 from ..routes import default_resolution, occupancy_graph, route_length
 from .base import ControllerBase
 from .costtogo import cost_to_go, speed_table
@@ -53,6 +54,13 @@ from .program import HorizonData, HorizonProgram
 from . import recovery
 
 __all__ = ["Controller"]
+
+#: Radius of the cost's dead zone around each goal, as a fraction of the arrival radius.
+DEAD_ZONE = 0.3
+#: Hardware slots (time steps, or minimum dwells) an automatic time-share period holds at least.
+MIX_SLOTS = 8
+#: Largest route grid (cells), so a very fine route_resolution is an error, not hours and gigabytes.
+MAX_GRID_CELLS = 1_000_000
 
 
 class Controller(ControllerBase):
@@ -94,6 +102,21 @@ class Controller(ControllerBase):
         self._graphs = {}
 
     # -- set-up ----------------------------------------------------------------------------------------
+    def _min_period(self):
+        """In timeshare mode a period must hold enough hardware slots to play a mix.
+
+        The program plans a continuous mix of primitives per period; the hardware plays whole time
+        steps of at least the minimum dwell. With fewer than :data:`MIX_SLOTS` slots per period the
+        mix played is mostly rounding error (measured on the 64-tone plate, 20 ms steps, 40 ms dwell:
+        six grains arrived with 0.32 s periods, not with 0.08 s).
+        """
+        lim = self.limits
+        if self.mode != "timeshare" or lim is None:
+            return 0.0
+        dwell = max([lim.min_dwell or 0.0] + [lim.get(c.name).min_dwell or 0.0 for c in self.channels])
+        slot = max(dwell, lim.time_step or 0.0)
+        return MIX_SLOTS * slot
+
     def _map_inputs(self, body, res):
         """The route graph and speed table of one body kind, cached."""
         key = (body, res)
@@ -105,13 +128,21 @@ class Controller(ControllerBase):
     def _build_maps(self, p):
         s = self.settings
         res = float(s.route_resolution) if s.route_resolution else default_resolution(self.workspace)
+        xmin, ymin, xmax, ymax = self.workspace.bounds
+        cells = ((xmax - xmin) / res) * ((ymax - ymin) / res)
+        if cells > MAX_GRID_CELLS:
+            raise WorkspaceError(
+                f"route_resolution {format_quantity(res, 'm')} makes a grid of {cells:.3g} cells over the workspace, "
+                f"more than the {MAX_GRID_CELLS:.0e} the planner allows (memory and time): use a coarser resolution, "
+                f"at least {format_quantity(np.sqrt((xmax - xmin) * (ymax - ymin) / MAX_GRID_CELLS), 'm')}.")
         if s.assign_goals and self.n > 1:
             self._assign(p, res)
         maps = []
         for i, b in enumerate(self.bodies):
             g, table = self._map_inputs(b, res)
             if not table[0]:
-                raise WorkspaceError(f"body {i} ({b.name}) has no free space on the {res:g} m route grid.")
+                raise WorkspaceError(f"body {i} ({b.name}) has no free space on the {format_quantity(res, 'm')} "
+                                     "route grid.")
             maps.append(cost_to_go(self.workspace, self.actuator, b, self.goals[i], start=p[i], resolution=res,
                                    clearance=self.clearance, graph=g, speeds=table))
         return maps
@@ -158,9 +189,13 @@ class Controller(ControllerBase):
         for i, m in enumerate(self.maps):
             if m.route is None:
                 self.route_reasons[i] = (f"its start is cut off from its goal in the free space of a body of radius "
-                                         f"{self.bodies[i].radius:g} m (walls and obstacles, clearance "
-                                         f"{self.clearance:g} m)")
+                                         f"{format_quantity(self.bodies[i].radius, 'm')} (walls and obstacles, "
+                                         f"clearance {format_quantity(self.clearance, 'm')})")
         self.initial_time_to_go = J0
+        # A dead zone around each goal (a third of the arrival radius, well inside the margin a plan
+        # settles to): a body there costs nothing, so the shared fields may jostle it a little while
+        # they bring the last ones in - without it the last body's pull is balanced by the others'.
+        self._dead = np.array([DEAD_ZONE * self.tolerance[i] / m.goal_speed for i, m in enumerate(self.maps)])
         T = self.period
         self.horizon = int(s.horizon) if s.horizon else int(np.clip(round(2.0 / s.trust_fraction), 8, 30))
         H = self.horizon
@@ -274,8 +309,8 @@ class Controller(ControllerBase):
             val[:, i], grad[:, i] = m.value_and_gradient(flat[:, i])
         return val.reshape(shp + (self.n,)), grad.reshape(shp + (self.n, 2))
 
-    def _deficits(self, X):
-        """Separation and wall deficits of positions ``X`` (..., n, 2), m: (..., ) summed."""
+    def _deficits(self, X, walls=True):
+        """Separation (and wall) deficits of positions ``X`` (..., n, 2), m: (..., ) summed."""
         shp = X.shape[:-2]
         flat = X.reshape(-1, self.n, 2)
         total = np.zeros(flat.shape[0])
@@ -284,8 +319,9 @@ class Controller(ControllerBase):
             dist = np.linalg.norm(flat[:, i] - flat[:, j], axis=2)
             need = self.radii[i] + self.radii[j] + self.clearance
             total += np.maximum(need - dist, 0.0).sum(axis=1)
-        clr = self.workspace.clearance(flat.reshape(-1, 2)).reshape(flat.shape[:2])
-        total += np.maximum(self.radii[None] - clr, 0.0).sum(axis=1)
+        if walls:
+            clr = self.workspace.clearance(flat.reshape(-1, 2)).reshape(flat.shape[:2])
+            total += np.maximum(self.radii[None] - clr, 0.0).sum(axis=1)
         return total.reshape(shp)
 
     def _merit(self, X, Ws, pushed=0.0):
@@ -294,10 +330,13 @@ class Controller(ControllerBase):
         s = self.settings
         T, L = self.period, self.length_unit
         J, _ = self._time_to_go(X[:, 1:])
-        cost = 0.5 * np.sum((J / T) ** 2 * self._stage[None, :, None], axis=(1, 2))
+        J = np.maximum(J - self._dead, 0.0)
+        cost = 0.5 * np.sum((J / T) ** 2 * self._stage[None, :, None] * self._body_w[None, None], axis=(1, 2))
         prev = np.concatenate([np.broadcast_to(self._prev, (Ws.shape[0], 1, self.K)), Ws[:, :-1]], axis=1)
         cost += s.effort_weight * np.sum(Ws**2, axis=(1, 2)) + s.smoothness_weight * np.sum((Ws - prev) ** 2, axis=(1, 2))
-        cost += self._rho * (np.sum(self._deficits(X[:, 1:]), axis=1) + pushed) / L
+        mid = 0.5 * (X[:, 1:] + X[:, :-1])
+        cost += self._rho * (np.sum(self._deficits(X[:, 1:]), axis=1) + np.sum(self._deficits(mid, walls=False), axis=1)
+                             + pushed) / L
         return cost
 
     @property
@@ -361,10 +400,20 @@ class Controller(ControllerBase):
         # An exact penalty must outweigh what a body gains by cutting a corner: the cost's gradient
         # per length unit grows with the time-to-go (in periods), so the weight does too.
         J_now, _ = self._time_to_go(p[None])
-        self._rho = s.slack_weight * (1.0 + float(np.max(J_now)) / self.period)
+        J_now = np.maximum(J_now[0] - self._dead, 0.0)
+        # Each body's squared time-to-go is weighed by 1 / (its own time-to-go now), so the cost's
+        # gradient is every body's time-to-go in seconds alike: the plan lowers the *sum* of the
+        # times (bodies far from home do not buy progress by pushing the others away), while a body
+        # near its goal sits in a steep quadratic that holds it there.
+        if s.balance == "time":
+            self._body_w = self.period / np.maximum(J_now, self.period)
+        else:
+            self._body_w = np.ones(self.n)
+        gmax = float(np.max(self._body_w * J_now)) / self.period
+        self._rho = s.slack_weight * (1.0 + gmax)
         # The QP sees the cost divided by the same factor (its gradients then are of order one,
         # which OSQP converges on much faster); acceptance compares unscaled true costs.
-        self._qp_scale = 1.0 / (1.0 + float(np.max(J_now)) / self.period)
+        self._qp_scale = 1.0 / (1.0 + gmax)
         # -- nominal: the best of the candidate sequences, judged by the true cost
         cands = [self._W, np.tile(self._idle_rate, (H, 1))]
         names = ["shifted", "idle"]
@@ -379,7 +428,8 @@ class Controller(ControllerBase):
         b = int(np.argmin(cost))
         Wb, Xb, Fb, db, Mb, cb = Ws[b], X[b], F[b], d[b], M[b], float(cost[b])
         if stalled and names[b] != "shifted":
-            self.stalls.append(f"t = {t:.4g} s: progress stalled; restarted the plan from the {names[b]} guess")
+            self.stalls.append(f"t = {format_quantity(t, 's', 4)}: progress stalled; restarted the plan from the "
+                               f"{names[b]} guess")
         # -- sequential convex programming
         delta = np.repeat(delta0[None], H, axis=0)          # (H, n) m
         accepted, solves, solve_time, solver_time, status, slack = 0, 0, 0.0, 0.0, "none", 0.0
@@ -421,11 +471,12 @@ class Controller(ControllerBase):
             segs += played
             self._prev = rate
             self._record_rms(played)
+        self.plan_weights = Wb                   # the plan this period chose, (H, K) program units
         self._W = np.vstack([Wb[r:], np.repeat(Wb[-1:], r, axis=0)])
         self._pred = Xb
         self._step += 1
         J, _ = self._time_to_go(p[None])
-        self._hist.append(float(np.sum(J[0] ** 2)))
+        self._hist.append(float(np.sum(np.maximum(J[0] - self._dead, 0.0) ** (1 if s.balance == "time" else 2))))
         self.records.append({
             "time": float(t), "status": status, "solve_time": solve_time, "solver_time": solver_time,
             "step_time": time.perf_counter() - tic, "max_slack": slack, "accepted": accepted, "solves": solves,
@@ -441,9 +492,9 @@ class Controller(ControllerBase):
         wgt = np.empty((H, n))
         cen = np.empty((H, n, 2))
         for i, m in enumerate(self.maps):
-            wgt[:, i], cen[:, i] = m.quadratic(Xs[:, i])
+            wgt[:, i], cen[:, i] = m.quadratic(Xs[:, i], offset=self._dead[i])
         sc = self._qp_scale
-        omega = sc * 0.5 * self._stage[:, None] * wgt * (L / T) ** 2
+        omega = sc * 0.5 * self._stage[:, None] * self._body_w[None] * wgt * (L / T) ** 2
         # separation: every pair, active where it could come within reach this iteration
         P = self.program.P
         pn = np.zeros((H, P, 2))
@@ -505,8 +556,9 @@ class Controller(ControllerBase):
             elif self.initial_speed is not None and self.initial_speed[i] <= 0:
                 out.append("the actuator cannot push it where it starts (available speed 0)")
             else:
-                ttg = f"; alone it would need about {J[0, i]:.3g} s more" if J is not None else ""
+                ttg = (f"; alone it would need about {format_quantity(J[0, i], 's')} more"
+                       if J is not None else "")
                 st = (f"; progress stalled {self._stall_count[i]} time(s) (the shared fields could not move it "
                       "without pushing the others away)") if self._stall_count[i] else ""
-                out.append(f"still {err[i]:.3g} m from its goal when the plan stopped{ttg}{st}")
+                out.append(f"still {format_quantity(err[i], 'm')} from its goal when the plan stopped{ttg}{st}")
         return out

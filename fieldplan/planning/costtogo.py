@@ -157,11 +157,20 @@ class CostToGo:
         """Time to goal at points ``xy`` (n, 2) m, s, shape (n,)."""
         return self.value_and_gradient(xy)[0]
 
-    def quadratic(self, xy):
-        """Local model of ``J^2 / 2`` at ``xy``: weights (s/m)^2 and virtual goals (m).
+    def quadratic(self, xy, offset=0.0):
+        """Local model of ``max(J - offset, 0)^2 / 2`` at ``xy``: weights (s/m)^2 and virtual goals (m).
 
-        ``J(x)^2 / 2 ~ weight * |x - centre|^2 / 2`` near each point, with the value and gradient
-        of ``J^2 / 2`` matched exactly; within ``near`` of the goal the centre is the goal itself.
+        ``max(J - offset, 0)^2 / 2 ~ weight * |x - centre|^2 / 2`` near each point, with the value
+        and gradient matched exactly. With ``offset = 0`` the centre near the goal is the goal itself;
+        with an offset (s) the cost vanishes within that time of the goal (a dead zone), and the
+        centre is the nearest point of the dead zone's edge.
+
+        Parameters
+        ----------
+        xy : ndarray, shape (n, 2)
+            m.
+        offset : float or ndarray, shape (n,)
+            s.
 
         Returns
         -------
@@ -170,6 +179,7 @@ class CostToGo:
         """
         xy = np.atleast_2d(np.asarray(xy, dtype=float))
         val, grad = self.value_and_gradient(xy)
+        val = np.maximum(val - offset, 0.0)
         g2 = np.sum(grad**2, axis=1)
         floor = 1e-6 / self.goal_speed**2
         weight = np.maximum(g2, floor)
@@ -180,11 +190,9 @@ class CostToGo:
         span = 10.0 * max(self.res * max(len(self.xs), len(self.ys)), 1e-12)
         ln = np.linalg.norm(step, axis=1, keepdims=True)
         step = np.where(ln > span, step * (span / np.maximum(ln, 1e-300)), step)
-        centre = xy - step
-        close = np.linalg.norm(xy - self.goal, axis=1) <= self.near
-        centre[close] = self.goal
-        weight[close] = 1.0 / self.goal_speed**2
-        return weight, centre
+        # Inside the dead zone nothing pulls: a faint weight centred where the body is.
+        weight = np.where(val > 0, weight, floor)
+        return weight, xy - step
 
 
 def cost_to_go(workspace, actuator, body, goal, *, start=None, resolution=None, clearance=0.0, floor=1e-3,

@@ -14,7 +14,7 @@ is what lets a sequence of periods move more bodies than one period can; the con
 re-linearises between iterations), the input set (box per period, the
 time-share simplex, per-period mean-square rows for RMS budgets), slew between periods, a trust
 region ``|x[h] - xbar[h]| <= delta`` around the nominal trajectory, linearised body-body separation
-``n_ij . (x_i - x_j) >= gap - s`` for every pair and period, and linearised wall keep-out
+``n_ij . (x_i - x_j) >= gap - s`` for every pair at every period's end and midpoint, and linearised wall keep-out
 ``n_i . x_i >= rhs - s``. Objective: ``sum omega |x - c|^2`` (the cost-to-go's local quadratics,
 see :mod:`fieldplan.planning.costtogo`) + effort ``sum e w^2`` + smoothness
 ``sum s (w[h] - w[h-1])^2`` (with ``w[-1]`` the input being played) + ``rho * sum(slack)``.
@@ -313,6 +313,19 @@ class HorizonProgram:
                                  base + 2 * self.pairs[:, 1], base + 2 * self.pairs[:, 1] + 1], axis=1)
                 Ab.add(f"pairX{h}", np.repeat(rr, 4), cols)
                 Ab.add(f"pairS{h}", rr, osp + h * P + np.arange(P))
+            # The same pairs halfway through each period (the midpoint of the straight move): bodies
+            # that swap sides between two period ends would otherwise pass through each other.
+            r0 = new("pairs_mid", H * P)
+            for h in range(H):
+                rr = r0 + h * P + np.arange(P)
+                for j, stage in enumerate((h, h - 1)):
+                    if stage < 0:
+                        continue
+                    base = ox + stage * nn
+                    cols = np.stack([base + 2 * self.pairs[:, 0], base + 2 * self.pairs[:, 0] + 1,
+                                     base + 2 * self.pairs[:, 1], base + 2 * self.pairs[:, 1] + 1], axis=1)
+                    Ab.add(f"pairM{h}_{j}", np.repeat(rr, 4), cols)
+                Ab.add(f"pairMS{h}", rr, osp + h * P + np.arange(P))
         r0 = new("walls", H * n)
         for h in range(H):
             rr = r0 + h * n + np.arange(n)
@@ -332,6 +345,7 @@ class HorizonProgram:
                 Ab.set(f"dyn_xm{h}", -self._eye)
             if P:
                 Ab.set(f"pairS{h}", 1.0)
+                Ab.set(f"pairMS{h}", 1.0)
             Ab.set(f"wallS{h}", 1.0)
         Ab.set("wbox", 1.0)
         if self.timeshare:
@@ -433,6 +447,17 @@ class HorizonProgram:
             for h in range(H):
                 Ab.set(f"pairX{h}", np.concatenate([pn[h], -pn[h]], axis=1).ravel())
             lo[s0:s0 + c], up[s0:s0 + c] = np.asarray(d.pair_gap, float).ravel(), np.inf
+            s0, c = self._rows["pairs_mid"]
+            gap = np.asarray(d.pair_gap, float).copy()
+            p0 = np.asarray(d.p0, float)
+            for h in range(H):
+                half = 0.5 * np.concatenate([pn[h], -pn[h]], axis=1).ravel()
+                Ab.set(f"pairM{h}_0", half)
+                if h:
+                    Ab.set(f"pairM{h}_1", half)
+            rel0 = p0[self.pairs[:, 0]] - p0[self.pairs[:, 1]]
+            gap[0] = gap[0] - 0.5 * np.einsum("pc,pc->p", pn[0], rel0)
+            lo[s0:s0 + c], up[s0:s0 + c] = gap.ravel(), np.inf
         s0, c = self._rows["walls"]
         wn = np.asarray(d.wall_normal, float)
         for h in range(H):
@@ -566,6 +591,8 @@ class HorizonProgram:
                 if np.isfinite(g):
                     nv = np.asarray(d.pair_normal, float)[h, p]
                     cons += [nv @ (x[h, 2 * i:2 * i + 2] - x[h, 2 * j:2 * j + 2]) + sp_[h, p] >= g]
+                    mid = 0.5 * (x[h] + xm)
+                    cons += [nv @ (mid[2 * i:2 * i + 2] - mid[2 * j:2 * j + 2]) + sp_[h, p] >= g]
             for i in range(n):
                 g = float(np.asarray(d.wall_rhs)[h, i])
                 if np.isfinite(g):

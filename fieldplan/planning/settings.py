@@ -40,6 +40,11 @@ class PlanSettings:
         Sequential convex programming iterations per period (horizon method): each solves the QP
         linearised along the current nominal trajectory, re-evaluates the true cost on the model,
         and is accepted only if that cost did not increase (else the trust region shrinks).
+    balance : {"time", "squared"}
+        Horizon method: how the bodies' times-to-go are traded. ``"time"``: the plan lowers their
+        sum (each body's squared time-to-go is weighed by its time-to-go when the period starts),
+        so bodies near home are held while the far ones come in. ``"squared"``: the sum of squares,
+        which lets the bodies furthest behind push the others away.
     replan_every : int
         Horizon method: periods of each plan played before planning again from new measurements
         (1: every period). More saves computing when periods are short against the time a plan
@@ -107,6 +112,7 @@ class PlanSettings:
     horizon: int | None = None
     iterations: int = 3
     replan_every: int = 1
+    balance: str = "squared"
     field_table: bool = True
     table_resolution: float | None = None
     tolerance: float | None = None
@@ -151,6 +157,8 @@ class PlanSettings:
                 raise FieldplanError(f"PlanSettings {key} must be a finite number >= 0, got {v!r}.")
         if self.clearance is not None and not (np.isfinite(self.clearance) and self.clearance >= 0):
             raise FieldplanError(f"PlanSettings clearance must be >= 0 m, got {self.clearance!r}.")
+        if self.balance not in ("time", "squared"):
+            raise FieldplanError(f"PlanSettings balance must be 'time' or 'squared', got {self.balance!r}.")
         if self.method not in ("horizon", "step"):
             raise FieldplanError(f"PlanSettings method must be 'horizon' or 'step', got {self.method!r}.")
         if self.horizon is not None and not (isinstance(self.horizon, (int, np.integer))

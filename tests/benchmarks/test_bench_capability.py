@@ -39,7 +39,7 @@ from fieldplan import Body, ChannelLimit, HardwareLimits, Shell, Workspace, air,
 from fieldplan.live import closed_loop
 from fieldplan.plan import PlanSettings
 from fieldplan.planning import Controller
-from fieldplan.steer import _wilson, basis_function, count_curve, steerable
+from fieldplan.steer import _wilson, basis_function, count_curve, counting_limit, steerable
 
 from peers import PEERS, run_peer
 
@@ -92,8 +92,7 @@ def plate_case():
     grain = Body("sand-1mm", radius=0.5e-3, density=2600.0)
     return dict(name="plate (24 tones, sand in air)", actuator=_plate(24, (150.0, 1500.0)), workspace=ws,
                 bodies=lambda n: [grain] * n, limits=HardwareLimits(time_step=0.02, min_dwell=0.04),
-                settings=PlanSettings(tolerance=3e-3, clearance=1e-3, time_limit=300.0, replan_every=4),
-                tracking=20e-6,
+                settings=PlanSettings(tolerance=3e-3, clearance=1e-3, time_limit=300.0), tracking=20e-6,
                 region=shapely.box(-0.06, -0.06, 0.06, 0.06), Ns=(1, 2, 3, 4) if FULL else (2, 3))
 
 
@@ -101,7 +100,7 @@ def plate64_case():
     """The same plate with 64 tones from 150 Hz to 3 kHz: a one-step limit near N = 6."""
     case = plate_case()
     case.update(name="plate (64 tones 150-3000 Hz, sand in air)", actuator=_plate(64, (150.0, 3000.0)),
-                Ns=(4, 6, 8, 12) if FULL else (4, 6, 8))
+                Ns=(4, 6, 8, 12) if FULL else (6, 8))
     return case
 
 
@@ -128,9 +127,7 @@ def counting_bound(case):
     body = case["bodies"](1)
     xy = ws.sample(1, body[0].radius, 0)
     b = case["actuator"].basis(body, ws.medium, xy)
-    if b.mode == "linear":
-        return b.mode, b.size, b.size / 2.0
-    return b.mode, b.size, (b.size - 1) / 2.0
+    return b.mode, b.size, counting_limit(b)   # the one definition (fieldplan.steer)
 
 
 def draw_task(case, N, seed):

@@ -3,8 +3,9 @@
 Run: .venv/bin/pytest -q -s tests/benchmarks/test_bench_dielectric.py -o addopts=""
 
 1. Unit responses of 16 electrodes (4 x 4 pads) on a 256 x 256 grid at one height: build
-   (one sparse LU for the floor + FFTs) against a baseline that solves the floor once per electrode
-   with its own factorisation (scipy.sparse.linalg.spsolve); cached reload from disk against the build.
+   (insulating gaps: block PCG on the electrode normal field + FFTs); the linear gap model's one
+   sparse LU against a baseline that solves that floor once per electrode with its own
+   factorisation (scipy.sparse.linalg.spsolve); cached reload from disk against the build.
 2. basis() for 20 bodies (two kinds, two heights) x 32 primitives (16 patterns x 2 frequencies):
    precomputed per-pattern grad|E_rms|^2 spline maps against (a) direct evaluation without those
    maps - superposing interpolated per-electrode gradient and Hessian at the points for every
@@ -56,17 +57,22 @@ def test_bench_unit_responses(tmp_path):
     # baseline floor: rasterise and assemble as ours, then one independent sparse solve (own
     # factorisation) per electrode instead of one LU for all
     def floor_baseline():
-        fresh = FloorSolver(lay, grid)
+        fresh = FloorSolver(lay, grid, gap_model="linear")
         fresh.assemble()
         rhs = -fresh.coupling.toarray()
         return fresh, [spla.spsolve(fresh.matrix, rhs[:, k]) for k in range(16)]
 
+    def floor_linear():
+        return FloorSolver(lay, grid, gap_model="linear").unit_responses()
+
     def floor_ours():
-        return FloorSolver(lay, grid).unit_responses()
+        return FloorSolver(lay, grid).unit_normal_fields()
 
     t_floor, _ = _median_time(floor_ours, repeats)
+    t_floor_lin, floor_lin = _median_time(floor_linear, repeats)
     t_floor_base, (fresh, cols) = _median_time(floor_baseline, 1)
-    np.testing.assert_allclose(cols[3], floor[3].ravel()[fresh._free], atol=1e-9)
+    np.testing.assert_allclose(cols[3], floor_lin[3].ravel()[fresh._free], atol=1e-9)
+    assert np.all(np.isfinite(floor)) and floor.shape == (16,) + grid.shape
 
     # cached reload from disk (fresh process memory)
     es.clear_memory_cache()
@@ -83,7 +89,8 @@ def test_bench_unit_responses(tmp_path):
     size = sum(p.stat().st_size for p in tmp_path.iterdir()) / 1e6
 
     _header()
-    _row("floor, 16 unit responses", t_floor, t_floor_base, "spsolve per electrode", "-")
+    _row("floor, 16 unit responses (linear)", t_floor_lin, t_floor_base, "spsolve per electrode", "-")
+    _row("floor, 16 unit responses (PCG)", t_floor, t_floor_lin, "linear gap model, one LU", "-")
     _row("build floor + maps at one height", t_build, t_floor_base + (t_build - t_floor),
          "same, floor by spsolve per electrode", "< 5000")
     _row("reload from disk cache", t_reload, t_build, "build", "< 500")
