@@ -103,6 +103,9 @@ def test_play_refuses_a_schedule_over_the_limits(rig, capsys):
                  "--yes"])
     assert code == 2
     assert "refusing to play" in capsys.readouterr().err and rig["state"]() == {"amp": 3.0, "out": 1}
+    assert main(["play", str(sched), "--driver", rig["url"], "--profile", rig["profile"], "--yes",
+                 "--log", str(sched)]) == 2                                 # the log never replaces an input
+    assert "inputs are never replaced" in capsys.readouterr().err
 
 
 def test_play_dry_run_against_the_scenario_simulator(tmp_path, capsys):
@@ -176,3 +179,5 @@ def test_track_command_writes_the_csv_fit_reads(tmp_path, capsys):
     assert main(args) == 2                                                  # exists: needs --force
     assert "--force" in capsys.readouterr().err
     assert main(args[:-2] + ["--marks", str(log), "--out", str(tmp_path / "x.csv")]) == 2   # two pixel maps
+    assert main(args[:-2] + ["--out", str(log), "--force"]) == 2                           # never over an input
+    assert "inputs are never replaced" in capsys.readouterr().err and log.read_text().startswith("time [s]")

@@ -95,6 +95,10 @@ def cmd_track(args):
         raise _UserError(f"{args.out} exists; pass --force to replace it.")
     if not os.path.exists(args.video):
         raise _UserError(f"{args.video}: no such file.")
+    for name in ("video", "settings", "marks"):
+        src = getattr(args, name)
+        if src and os.path.exists(src) and os.path.exists(args.out) and os.path.samefile(src, args.out):
+            raise _UserError(f"--out {args.out} is the {name} file; choose another name (inputs are never replaced).")
     given = [k for k in ("px", "marks", "affine") if getattr(args, k)]
     if len(given) > 1:
         raise _UserError(f"give one pixel map, not {' and '.join('--' + k for k in given)}: --px (with --rotation, "
@@ -169,6 +173,11 @@ def cmd_play(args):
     from .pacing import RealTimeClock  # noqa: PLC0415
     from .play import limits_text, load_for_play, play  # noqa: PLC0415
 
+    if args.log and os.path.exists(args.log):
+        for name in ("schedule", "profile", "limits", "scenario"):
+            src = getattr(args, name)
+            if src and os.path.exists(src) and os.path.samefile(src, args.log):
+                raise _UserError(f"--log {args.log} is the {name} file; choose another name (inputs are never replaced).")
     sc = _load(args.scenario, args) if args.scenario else None
     if args.speed != 1.0 and not args.dry_run:
         raise _UserError("--speed is for --dry-run only: a real instrument plays in real time.")
