@@ -21,7 +21,7 @@ import pytest
 pyvisa = pytest.importorskip("pyvisa")
 pytest.importorskip("pyvisa_sim")
 
-from fieldplan import Channel, ChannelLimit, HardwareLimits, Schedule, Segment  # noqa: E402
+from fieldplan import ChannelLimit, HardwareLimits, Schedule, Segment  # noqa: E402
 from fieldplan.cli import main  # noqa: E402
 from fieldplan.lab.drivers import open_driver  # noqa: E402
 from fieldplan.lab.inputlog import read_input_log  # noqa: E402
@@ -141,18 +141,18 @@ def test_a_signal_to_a_running_play_leaves_the_instrument_idle(rig, sig):
                              "--log", str(log)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
     try:
         for line in proc.stdout:                                            # the limits are shown, then it plays
-            if line.startswith("  tone_amp"):
+            if line.startswith("playing"):
                 break
         time.sleep(0.8)
         proc.send_signal(getattr(signal, sig))
-        out, err = proc.communicate(timeout=60)
+        _, err = proc.communicate(timeout=60)
     finally:
         if proc.poll() is None:
             proc.kill()
     assert proc.returncode == 128 + getattr(signal, sig), err
     rows = read_input_log(log)
-    assert 2 < len(rows.times) < 42                                         # stopped part-way
-    assert rows.primitive[-1] == "idle" and rows.values[-1][1] == 0.0
+    assert 2 < len(rows.times) < 42, err                                    # stopped part-way
+    assert rows.primitive[-1] == "idle" and rows.values[-1][1] == 0.0, err
     text = log.read_text().splitlines()[-1]
     assert "OUTP 0" in text
 

@@ -71,7 +71,7 @@ def test_read_marks_and_input_log_errors(tmp_path):
     m = tmp_path / "marks.csv"
     m.write_text("x_px,y_px,x [um],y [um]\n0,0,0,0\n100,0,65,0\n")
     px, ws = read_marks(m)
-    assert ws[1, 0] == pytest.approx(65e-6)
+    assert ws[1, 0] == pytest.approx(65e-6) and px[1, 0] == 100
     bad = tmp_path / "bad.csv"
     bad.write_text("time [s],primitive,coil_1 [A]\n0,a,1\n0,b,2\n")
     with pytest.raises(InputLogError, match=r"bad.csv:3: log times must be finite and increase"):

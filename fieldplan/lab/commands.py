@@ -199,9 +199,9 @@ def cmd_play(args):
         raise _UserError(f"refusing to play {args.schedule}: {exc} Nothing was sent.") from None
     except LabDependencyError as exc:
         raise _UserError(str(exc)) from None
-    head = (["DRY RUN: nothing is sent to any instrument."] if args.dry_run else
-            ["Before you go on: instrument output OFF while connecting, interlocks closed, nobody in reach "
-             "of the set-up."])
+    caution = ("Before you go on: instrument output OFF while connecting, interlocks closed, nobody in reach "
+               "of the set-up.")
+    head = ["DRY RUN: nothing is sent to any instrument."] if args.dry_run else [caution]
     lines = head + [f"driver: {args.driver} ({driver.describe()})"] + limits_text(schedule, lim)
     if not args.yes:
         print(*lines, sep="\n", flush=True)
@@ -222,6 +222,7 @@ def cmd_play(args):
 
         def on_segment(j, seg):
             sim.apply(seg)
+    _say(args, f"playing {schedule.duration:.4g} s; Ctrl-C stops and sets the instrument to the idle input")
     rep = play(schedule, driver, limits=lim, clock=RealTimeClock(speed=args.speed), on_segment=on_segment)
     lat = rep.latency
     _say(args, rep.message, f"timing: latency median {1e3 * float(np.median(lat)) if len(lat) else 0:.2f} ms, max "

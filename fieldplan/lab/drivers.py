@@ -519,7 +519,6 @@ class Driver:
         self.segments_sent += 1
         self.at_idle = bool(np.allclose(segment.values, [c.idle for c in self.channels]))
         self._log(segment.start, _setting_label(self.channels, segment), segment.values, text, reply)
-        return None
 
     def idle(self):
         """Put the instrument at the idle input (output off) and log it."""

@@ -443,7 +443,7 @@ def tracks_from_features(features, pixel_map, *, fps=None, times=None, settings=
     n_frames = int(frame.max()) + 1 if n_frames is None else int(n_frames)
     last_frame = n_frames - 1
     issues = []
-    tr, tt, xy, fr = [], [], [], []
+    tr, xy, fr = [], [], []
     report = []
     for p in np.unique(pid):
         sel = pid == p
