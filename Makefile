@@ -9,7 +9,7 @@ STAMP  := $(VENV)/.installed
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
-	$(PY) -m pip install --quiet -e ".[test,cluster]"
+	$(PY) -m pip install --quiet -e ".[test,cluster,lab]"
 	touch $(STAMP)
 
 demo: $(STAMP)

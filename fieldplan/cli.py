@@ -175,6 +175,9 @@ def build_parser():
             fieldplan schema > SCENARIO-REFERENCE.md
             """)
     s.add_argument("--actuators-only", action="store_true", help="only list the registered actuators")
+    from .lab.commands import add_commands as _add_lab_commands  # noqa: PLC0415
+
+    _add_lab_commands(add, _nonneg_int)
     return p
 
 
@@ -711,6 +714,24 @@ def _with_planner_defaults(reference):
 
 _COMMANDS = {"run": _cmd_run, "compare": _cmd_compare, "inspect": _cmd_inspect, "validate": _cmd_validate,
              "fit": _cmd_fit, "schema": _cmd_schema}
+
+
+# ---------------------------------------------------------------------------------------------
+# the lab commands: `track` and `play` live in fieldplan/lab/commands.py
+# ---------------------------------------------------------------------------------------------
+def _cmd_track(args):
+    from .lab.commands import cmd_track  # noqa: PLC0415
+
+    return cmd_track(args)
+
+
+def _cmd_play(args):
+    from .lab.commands import cmd_play  # noqa: PLC0415
+
+    return cmd_play(args)
+
+
+_COMMANDS.update(track=_cmd_track, play=_cmd_play)
 
 
 class _Terminated(KeyboardInterrupt):
