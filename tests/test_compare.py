@@ -114,7 +114,7 @@ def test_schema_lists_every_planner_default(capsys):
     assert "| `*` |" not in section
     for name in PlanSettings.__dataclass_fields__:
         assert f"| `{name}` |" in section, name
-    assert "| `horizon` | int |  | `1` |" in section
+    assert "| `horizon` | int |  | automatic (see meaning) |" in section
 
 
 def test_chart_is_relative_to_each_tolerance_and_has_no_whiskers_with_one_run():

@@ -335,7 +335,7 @@ class Controller(ControllerBase):
         prev = np.concatenate([np.broadcast_to(self._prev, (Ws.shape[0], 1, self.K)), Ws[:, :-1]], axis=1)
         cost += s.effort_weight * np.sum(Ws**2, axis=(1, 2)) + s.smoothness_weight * np.sum((Ws - prev) ** 2, axis=(1, 2))
         mid = 0.5 * (X[:, 1:] + X[:, :-1])
-        cost += self._rho * (np.sum(self._deficits(X[:, 1:]), axis=1) + np.sum(self._deficits(mid, walls=False), axis=1)
+        cost += self._rho * (np.sum(self._deficits(X[:, 1:]), axis=1) + np.sum(self._deficits(mid), axis=1)
                              + pushed) / L
         return cost
 

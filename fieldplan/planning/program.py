@@ -15,7 +15,7 @@ re-linearises between iterations), the input set (box per period, the
 time-share simplex, per-period mean-square rows for RMS budgets), slew between periods, a trust
 region ``|x[h] - xbar[h]| <= delta`` around the nominal trajectory, linearised body-body separation
 ``n_ij . (x_i - x_j) >= gap - s`` for every pair at every period's end and midpoint, and linearised wall keep-out
-``n_i . x_i >= rhs - s``. Objective: ``sum omega |x - c|^2`` (the cost-to-go's local quadratics,
+``n_i . x_i >= rhs - s`` (also at each period's midpoint). Objective: ``sum omega |x - c|^2`` (the cost-to-go's local quadratics,
 see :mod:`fieldplan.planning.costtogo`) + effort ``sum e w^2`` + smoothness
 ``sum s (w[h] - w[h-1])^2`` (with ``w[-1]`` the input being played) + ``rho * sum(slack)``.
 
@@ -320,6 +320,14 @@ class HorizonProgram:
             rr = r0 + h * n + np.arange(n)
             Ab.add(f"wallX{h}", np.repeat(rr, 2), xi(h))
             Ab.add(f"wallS{h}", rr, osw + h * n + np.arange(n))
+        # ... and halfway through each period, so a straight move does not cut an obstacle's corner.
+        r0 = new("walls_mid", H * n)
+        for h in range(H):
+            rr = r0 + h * n + np.arange(n)
+            Ab.add(f"wallM{h}_0", np.repeat(rr, 2), xi(h))
+            if h:
+                Ab.add(f"wallM{h}_1", np.repeat(rr, 2), xi(h - 1))
+            Ab.add(f"wallMS{h}", rr, osw + h * n + np.arange(n))
         r0 = new("slack", H * (P + n))
         Ab.add("slack", r0 + np.arange(H * (P + n)), np.arange(osp, nz))
         self.n_rows = r
@@ -336,6 +344,7 @@ class HorizonProgram:
                 Ab.set(f"pairS{h}", 1.0)
                 Ab.set(f"pairMS{h}", 1.0)
             Ab.set(f"wallS{h}", 1.0)
+            Ab.set(f"wallMS{h}", 1.0)
         Ab.set("wbox", 1.0)
         if self.timeshare:
             Ab.set("sum", 1.0)
@@ -452,6 +461,14 @@ class HorizonProgram:
         for h in range(H):
             Ab.set(f"wallX{h}", wn[h].ravel())
         lo[s0:s0 + c], up[s0:s0 + c] = np.asarray(d.wall_rhs, float).ravel(), np.inf
+        s0, c = self._rows["walls_mid"]
+        rhs = np.asarray(d.wall_rhs, float).copy()
+        for h in range(H):
+            Ab.set(f"wallM{h}_0", 0.5 * wn[h].ravel())
+            if h:
+                Ab.set(f"wallM{h}_1", 0.5 * wn[h].ravel())
+        rhs[0] = rhs[0] - 0.5 * np.einsum("nc,nc->n", wn[0], np.asarray(d.p0, float))
+        lo[s0:s0 + c], up[s0:s0 + c] = rhs.ravel(), np.inf
         s0, c = self._rows["slack"]
         lo[s0:s0 + c], up[s0:s0 + c] = 0.0, np.inf
         return q, lo, up
@@ -585,7 +602,9 @@ class HorizonProgram:
             for i in range(n):
                 g = float(np.asarray(d.wall_rhs)[h, i])
                 if np.isfinite(g):
-                    cons += [np.asarray(d.wall_normal, float)[h, i] @ x[h, 2 * i:2 * i + 2] + sw[h, i] >= g]
+                    nw = np.asarray(d.wall_normal, float)[h, i]
+                    cons += [nw @ x[h, 2 * i:2 * i + 2] + sw[h, i] >= g]
+                    cons += [nw @ (0.5 * (x[h] + xm))[2 * i:2 * i + 2] + sw[h, i] >= g]
             obj += cp.sum(cp.multiply(om[h], cp.square(x[h] - cen[h])))
             obj += cp.sum(cp.multiply(np.asarray(d.effort, float), cp.square(w[h])))
             obj += cp.sum(cp.multiply(np.asarray(d.smooth, float), cp.square(w[h] - wm)))

@@ -34,8 +34,9 @@ class PlanSettings:
         controller (:class:`fieldplan.plan.StepController`), kept for comparison.
     horizon : int, optional
         Periods the program looks ahead. Default (horizon method): from the fields' variation
-        length and the bodies' speeds, so the horizon spans about three variation lengths of
-        travel, between 8 and 30 periods; the step method defaults to 1.
+        length and the bodies' speeds: ``2 / trust_fraction`` periods (each moves a body about one
+        trust radius, a ``trust_fraction`` of the variation length), so about two variation lengths
+        of travel, between 8 and 30 periods; the step method defaults to 1.
     iterations : int
         Sequential convex programming iterations per period (horizon method): each solves the QP
         linearised along the current nominal trajectory, re-evaluates the true cost on the model,
@@ -68,7 +69,7 @@ class PlanSettings:
     slack_weight : float
         Exact-penalty weight of the soft constraints.
     progress_weight : float
-        Reward of the common progress along the routes, relative to the tracking cost of a full
+        Step method: Reward of the common progress along the routes, relative to the tracking cost of a full
         step (small: the program takes the largest step all bodies can follow closely).
     trust_fraction : float
         Trust radius per period as a fraction of the fields' variation length ``|f| / |grad f|``.
@@ -77,7 +78,7 @@ class PlanSettings:
     route_resolution : float, optional
         Route grid cell, m (default :func:`fieldplan.routes.default_resolution`).
     field_aware_routes : bool
-        Route edge cost = time at the actuator's available speed instead of length.
+        Step method: Route edge cost = time at the actuator's available speed instead of length.
     assign_goals : bool
         Bodies of the same kind may swap goals (minimum total route cost).
     max_steps : int
@@ -85,16 +86,16 @@ class PlanSettings:
     stall_window : int
         Periods over which progress is measured to detect a stall.
     stall_progress : float
-        A body stalls when over the window it progresses less than this fraction of what the fields
+        Step method: A body stalls when over the window it progresses less than this fraction of what the fields
         could do for it alone, or less than a third of what the step program planned for it.
     relinearise : bool
-        With ``horizon > 1``, evaluate the fields at the predicted positions of later periods.
+        Step method: With ``horizon > 1``, evaluate the fields at the predicted positions of later periods.
     backend : {"osqp", "cvxpy"}
-        Step program back end (see :mod:`fieldplan.control`).
+        Step method: Step program back end (see :mod:`fieldplan.control`).
     solver : str, optional
         cvxpy solver name for the ``"cvxpy"`` back end.
     separation_slots : int, optional
-        Room for pair constraints per period (default all pairs up to 4 n).
+        Step method: Room for pair constraints per period (default all pairs up to 4 n).
     timeshare_rounds : int
         In timeshare mode, play each period's primitive mix in this many shorter rounds (fewer when
         the hardware time step does not divide the period, one with a minimum dwell), so that a body
