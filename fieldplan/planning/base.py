@@ -22,6 +22,9 @@ from .settings import PlanSettings, check_goals
 
 __all__ = ["ControllerBase"]
 
+#: Relative margin under each declared RMS limit that the controllers plan to.
+RMS_MARGIN = 1e-3
+
 
 class ControllerBase:
     """Shared set-up and output of the controllers (see the module docstring).
@@ -225,6 +228,9 @@ class ControllerBase:
             if cl.rms is None:
                 continue
             W = cl.rms_window
+            # Plan to 0.1 % under the limit: time-share slices rounded to hardware steps (with error
+            # diffusion) and windows that straddle period edges can otherwise overshoot by ~1e-4.
+            rms = float(cl.rms) * (1.0 - RMS_MARGIN)
             # Trailing-window budget, checked every period over the last g periods (this one
             # included): sum of per-period mean squares <= total. In linear mode the input is
             # constant over a period, so the windowed integral is piecewise linear in the window's
@@ -240,11 +246,11 @@ class ControllerBase:
                 g = max(1, int(np.ceil(W / T - 1e-9)))
                 if self.mode == "timeshare":
                     g += 1
-                total = float(cl.rms) ** 2 * (W / T if g > 1 else 1.0)
+                total = rms ** 2 * (W / T if g > 1 else 1.0)
             # With a slew limit a budget that shrinks faster than the input may ramp down cannot be
             # met, so such channels are held at their sustainable level instead.
             capped = self.mode == "linear" and self._slew is not None and np.isfinite(self._slew[j])
-            self._rms.append((j, float(cl.rms), g, total, capped))
+            self._rms.append((j, rms, g, total, capped))
 
     def _rms_bounds(self):
         """Per-period bounds from the RMS budgets: (lo0, hi0, rows, rhs0, rhs_later) in program units."""
