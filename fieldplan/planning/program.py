@@ -294,13 +294,16 @@ class HorizonProgram:
         r0 = new("trust", H * nn)
         Ab.add("trust", r0 + np.arange(H * nn), np.arange(ox, osp))
         if P:
+            def pair_cols(stage):
+                """Columns (x_i, y_i, x_j, y_j) of every pair at stored stage ``stage``, shape (P, 4)."""
+                base = ox + stage * nn
+                i, j = 2 * self.pairs[:, 0], 2 * self.pairs[:, 1]
+                return np.stack([base + i, base + i + 1, base + j, base + j + 1], axis=1)
+
             r0 = new("pairs", H * P)
             for h in range(H):
                 rr = r0 + h * P + np.arange(P)
-                base = ox + h * nn
-                cols = np.stack([base + 2 * self.pairs[:, 0], base + 2 * self.pairs[:, 0] + 1,
-                                 base + 2 * self.pairs[:, 1], base + 2 * self.pairs[:, 1] + 1], axis=1)
-                Ab.add(f"pairX{h}", np.repeat(rr, 4), cols)
+                Ab.add(f"pairX{h}", np.repeat(rr, 4), pair_cols(h))
                 Ab.add(f"pairS{h}", rr, osp + h * P + np.arange(P))
             # The same pairs halfway through each period (the midpoint of the straight move): bodies
             # that swap sides between two period ends would otherwise pass through each other.
@@ -308,12 +311,8 @@ class HorizonProgram:
             for h in range(H):
                 rr = r0 + h * P + np.arange(P)
                 for j, stage in enumerate((h, h - 1)):
-                    if stage < 0:
-                        continue
-                    base = ox + stage * nn
-                    cols = np.stack([base + 2 * self.pairs[:, 0], base + 2 * self.pairs[:, 0] + 1,
-                                     base + 2 * self.pairs[:, 1], base + 2 * self.pairs[:, 1] + 1], axis=1)
-                    Ab.add(f"pairM{h}_{j}", np.repeat(rr, 4), cols)
+                    if stage >= 0:
+                        Ab.add(f"pairM{h}_{j}", np.repeat(rr, 4), pair_cols(stage))
                 Ab.add(f"pairMS{h}", rr, osp + h * P + np.arange(P))
         r0 = new("walls", H * n)
         for h in range(H):
