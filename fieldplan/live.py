@@ -145,7 +145,8 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
     t0 : float
         s, time of the first segment.
     max_steps : int, optional
-        Most periods (default the controller's ``max_steps``).
+        Most controller steps (default the controller's ``step_cap``: ``max_steps``, or what its time
+        limit needs).
     settle : int
         Consecutive observations with every body within tolerance needed to stop (more than one
         rejects a single lucky noisy frame).
@@ -170,8 +171,9 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
     in_a_row = 0
     status, head = 1, ""
     settled = 0
-    steps_cap = max_steps if max_steps is not None else controller.settings.max_steps
-    for _ in range(steps_cap + max_dropped + 1):
+    # Bounded even while the tracker gives nothing: a run of unusable frames ends after max_dropped.
+    hard_cap = 10_000_000
+    for _ in range(hard_cap):
         obs = observe()
         rows_ok = np.zeros(n, dtype=bool)
         if obs is not None:
@@ -236,6 +238,7 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
         if t - t0 >= limit - 1e-9 * controller.period:
             head = f"duration {limit:.4g} s reached"
             break
+        steps_cap = max_steps if max_steps is not None else controller.step_cap
         if len(step_times) >= steps_cap:
             head = f"step limit {steps_cap} reached"
             break

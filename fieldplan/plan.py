@@ -804,7 +804,7 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
     if progress:
         from tqdm import tqdm
 
-        bar = tqdm(total=ctrl.settings.max_steps, desc="plan", leave=False)
+        bar = tqdm(total=ctrl.step_cap, desc="plan", leave=False)
     if any(r is not None for r in ctrl.route_reasons):
         status = 3
         head = "no route for some bodies"
@@ -813,7 +813,7 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
         head = "cannot plan"
     else:
         settle_left = None
-        for _ in range(ctrl.settings.max_steps):
+        for _ in range(ctrl.step_cap):
             pos = sim.positions
             if ctrl.arrived(pos).all():
                 if settle_left is None:
@@ -844,7 +844,7 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
             if ctrl.arrived(sim.positions).all():
                 status = 0
             else:
-                head = f"step limit {ctrl.settings.max_steps} reached"
+                head = f"step limit {ctrl.step_cap} reached"
     if bar is not None:
         bar.close()
     schedule = Schedule.from_segments(ctrl.channels, segments) if segments else Schedule.empty(ctrl.channels)

@@ -224,6 +224,8 @@ def test_nidaqmx_writer_needs_a_driver():
         pytest.skip(f"no NI-DAQmx driver or device on this machine: {exc}")
     with WaveformDriver(COILS[:1], None, writer, 1000.0) as drv:           # pragma: no cover - needs hardware
         drv(Segment(0.0, 0.01, [0.1]))
+        assert drv.segments_sent == 1
+    assert drv.at_idle                                                     # back at the idle input
 
 
 def test_dry_run_formats_and_logs_without_an_instrument(sim):

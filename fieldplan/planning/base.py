@@ -118,6 +118,16 @@ class ControllerBase:
                             "no input is left to plan with: the declared limits pin every channel")
         return delta, speed
 
+    @property
+    def step_cap(self):
+        """Most controller steps of a plan: ``settings.max_steps``, or as many as the time limit needs
+        (periods per step: ``replan_every``) plus the settling steps and a margin of ten."""
+        s = self.settings
+        if s.max_steps is not None:
+            return int(s.max_steps)
+        per = self.period * max(1, int(getattr(s, "replan_every", 1) or 1))
+        return int(np.ceil(self.time_limit / per)) + int(s.settle_steps) + 10
+
     def _min_period(self):
         """Shortest automatic period, s (0 here; a controller may ask for more)."""
         return 0.0

@@ -81,8 +81,8 @@ class PlanSettings:
         Step method: Route edge cost = time at the actuator's available speed instead of length.
     assign_goals : bool
         Bodies of the same kind may swap goals (minimum total route cost).
-    max_steps : int
-        Most control periods of a plan.
+    max_steps : int, optional
+        Most controller steps of a plan (default: as many as the time limit needs, plus settling).
     stall_window : int
         Periods over which progress is measured to detect a stall.
     stall_progress : float
@@ -129,7 +129,7 @@ class PlanSettings:
     route_resolution: float | None = None
     field_aware_routes: bool = False
     assign_goals: bool = False
-    max_steps: int = 3000
+    max_steps: int | None = None
     stall_window: int = 8
     stall_progress: float = 0.05
     relinearise: bool = True
@@ -166,7 +166,10 @@ class PlanSettings:
                                              and not isinstance(self.horizon, bool) and self.horizon >= 1):
             raise FieldplanError(f"PlanSettings horizon must be an integer >= 1 (or None for automatic), "
                                  f"got {self.horizon!r}.")
-        for key in ("iterations", "replan_every", "max_steps", "stall_window", "timeshare_rounds"):
+        if self.max_steps is not None and not (isinstance(self.max_steps, (int, np.integer))
+                                               and not isinstance(self.max_steps, bool) and self.max_steps >= 1):
+            raise FieldplanError(f"PlanSettings max_steps must be an integer >= 1 (or None), got {self.max_steps!r}.")
+        for key in ("iterations", "replan_every", "stall_window", "timeshare_rounds"):
             v = getattr(self, key)
             if not (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= 1):
                 raise FieldplanError(f"PlanSettings {key} must be an integer >= 1, got {v!r}.")
