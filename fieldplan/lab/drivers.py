@@ -25,6 +25,7 @@ program.
 
 from __future__ import annotations
 
+import abc
 import collections
 import datetime as _dt
 import math
@@ -443,7 +444,7 @@ def _setting_label(channels, segment):
     return _setting_name([(c.name, c.unit) for c in channels], segment.values)
 
 
-class Driver:
+class Driver(abc.ABC):
     """Base of the drivers: the limit check, the idle input, the log, the context manager.
 
     Parameters
@@ -476,13 +477,13 @@ class Driver:
         """Connect and send any set-up commands; return a list of (text, reply)."""
         return []
 
+    @abc.abstractmethod
     def _send(self, segment, index):
         """Send one segment; return (text sent, reply)."""
-        raise NotImplementedError
 
+    @abc.abstractmethod
     def _send_idle(self):
         """Put the instrument at the idle input; return (text sent, reply)."""
-        raise NotImplementedError
 
     def _close(self):
         pass
