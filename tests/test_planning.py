@@ -66,6 +66,40 @@ def test_cost_to_go_goes_round_an_obstacle_and_points_back_into_free_space():
     assert np.all(np.isfinite(g))
 
 
+def _ring(m):
+    a = np.linspace(0, 2 * np.pi, m, endpoint=False)
+    return np.stack([np.cos(a), np.sin(a)], axis=1)
+
+
+def test_cost_to_go_is_continuous_across_the_goal_ring_and_its_gradient_is_exact():
+    # Near the goal the map falls linearly along rays from the ring at `near`. A jump at the ring
+    # would be a barrier the plan cannot cross (bodies once stalled on it, a few mm from their goals).
+    act = SourceArray([[0, 0], [1e-3, 0], [1e-3, 1e-3], [0, 1e-3]], force=2e-12)
+    ctg = cost_to_go(WS, act, BEAD, [4.7e-4, 5.2e-4])
+    ang = np.linspace(0, 2 * np.pi, 13)[:-1]
+    u = np.stack([np.cos(ang), np.sin(ang)], axis=1)
+    inside = ctg.value(ctg.goal + (1 - 1e-7) * ctg.near * u)
+    outside = ctg.value(ctg.goal + (1 + 1e-7) * ctg.near * u)
+    np.testing.assert_allclose(inside, outside, rtol=1e-5)
+    # Every ray rises from the goal, where the time is zero, to the ring (no dip to stall in).
+    rs = np.linspace(0.0, 1.0, 41) * ctg.near
+    along = np.array([ctg.value(ctg.goal + r * u) for r in rs])          # (radii, directions)
+    assert np.all(np.diff(along, axis=0) > 0) and ctg.value([ctg.goal])[0] == 0.0
+    # The gradient inside the ring is the derivative of the value (central differences).
+    x = ctg.goal + 0.6 * ctg.near * u[[1, 4, 7]] + [[1e-7, -2e-7]]
+    _, g = ctg.value_and_gradient(x)
+    h = 1e-9
+    fd = np.stack([(ctg.value(x + [h, 0]) - ctg.value(x - [h, 0])) / (2 * h),
+                   (ctg.value(x + [0, h]) - ctg.value(x - [0, h])) / (2 * h)], axis=1)
+    np.testing.assert_allclose(g, fd, rtol=1e-4)
+    # Within a third of the goal region it is the straight-line time at one speed (isotropic), whose
+    # square the horizon program models exactly; that speed is the ring's mean rate.
+    r = 0.3 * ctg.near
+    np.testing.assert_allclose(ctg.value(ctg.goal + r * u), r / ctg.goal_speed, rtol=1e-12)
+    np.testing.assert_allclose(1.0 / ctg.goal_speed, np.min(ctg.value(ctg.goal + ctg.near * _ring(64))) / ctg.near,
+                               rtol=1e-9)
+
+
 def test_quadratic_model_matches_value_and_gradient():
     act = SourceArray([[0, 0], [1e-3, 0], [1e-3, 1e-3], [0, 1e-3]], force=2e-12)
     ctg = cost_to_go(WS, act, BEAD, [7e-4, 6e-4])
@@ -261,3 +295,30 @@ def test_slew_is_a_rate_ramps_within_a_period():
     assert "ramp" in set(slow.schedule.labels)
     dv = np.abs(np.diff(np.asarray(slow.schedule.values), axis=0))
     assert dv.max() <= 0.25 * 0.1 * (1 + 1e-9)
+
+
+class ToneDrive(UniformDrive):
+    """The uniform drive played as time-shared primitives (each channel at a bound), like a tone set."""
+
+    tags = frozenset({"zero_idle"})
+
+
+def test_time_share_error_diffusion_plays_mixes_shorter_than_a_dwell():
+    # Holds shorter than the minimum dwell cannot be played; error diffusion must carry them over
+    # periods (not drop them), so that small corrections - the last millimetres of a plan - happen.
+    lim = HardwareLimits(time_step=0.02, min_dwell=0.04)
+    ctrl = Controller(ToneDrive(2e-5), [BEAD], WS, [[6e-4, 5e-4]], limits=lim, settings=PlanSettings(period=0.32))
+    ctrl.prepare([[5e-4, 5e-4]])
+    assert ctrl.mode == "timeshare" and ctrl.period == pytest.approx(0.32)
+    ask = np.zeros(ctrl.K)
+    ask[0] = 0.03                                   # 3 % of each period: 9.6 ms, under a 40 ms dwell
+    played = np.zeros(ctrl.K)
+    periods = 100
+    for k in range(periods):
+        for sg in ctrl._segments(ask, k * ctrl.period):
+            d = sg.duration
+            if sg.label != "idle":
+                # every hold is a whole number of hardware steps and at least the dwell
+                assert d >= 0.04 - 1e-9 and abs(d / 0.02 - round(d / 0.02)) < 1e-6
+                played[[p.name for p in ctrl._prim_objs()].index(sg.label)] += d
+    np.testing.assert_allclose(played / (periods * ctrl.period), ask, atol=0.04 / (periods * ctrl.period) + 1e-12)

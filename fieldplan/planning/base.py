@@ -352,17 +352,8 @@ class ControllerBase:
         for j in range(R):
             # The same mix played in R shorter rounds: excursions within a period shrink R-fold.
             wr = w / R
-            if ts:
-                # Error diffusion: what rounding to the hardware step takes from one round is given
-                # back in the next, so the mix played over time is the one planned.
-                target = wr + self._q_res
-                wr = np.maximum(np.round(target / ts) * ts, 0.0)
-                while wr.sum() > T / R * (1 + 1e-12):
-                    k = int(np.argmax(wr))
-                    wr[k] -= ts
-                self._q_res = np.clip(target - wr, -ts, ts)
-            if dwell:
-                wr[wr < dwell * (1 - 1e-9)] = 0.0
+            if ts or dwell:
+                wr = self._quantise(wr, T / R, ts, dwell)
             segs += B.to_segments(wr, T / R, start=t + j * T / R, min_duration=0.0)
         if ts:
             # Keep segment boundaries on the hardware grid (to_segments drops sub-step round-off).
@@ -375,6 +366,35 @@ class ControllerBase:
                 tt += d
             segs = fixed
         return segs
+
+    def _quantise(self, wr, span, ts, dwell):
+        """Hold times ``wr`` (K,) s of one round of ``span`` s, made playable, with error diffusion.
+
+        The hardware plays whole time steps ``ts`` and holds a primitive at least ``dwell`` or not at
+        all. What the quantisation takes from one round is given back in the next (error diffusion,
+        the residual bounded by one quantum), so the mix played over time is the one planned. The
+        dwell is part of the quantisation: a primitive asked for less than a dwell per period
+        accumulates until half a dwell is owed, then plays one dwell. Cutting short holds without
+        carrying them (as before) left every correction smaller than a dwell unplayed, period after
+        period: on the 64-tone plate (40 ms dwell in 0.32 s periods) the last grains stalled just
+        outside their arrival radius.
+        """
+        ts = float(ts or 0.0)
+        dwell = float(dwell or 0.0)
+        target = wr + self._q_res
+        q = np.maximum(np.round(target / ts) * ts, 0.0) if ts else np.maximum(target, 0.0)
+        if dwell:
+            d = np.ceil(dwell / ts - 1e-9) * ts if ts else dwell       # the shortest playable hold
+            short = q < d * (1 - 1e-9)
+            q[short] = np.where(target[short] >= 0.5 * d, d, 0.0)
+        else:
+            d = ts
+        while q.sum() > span * (1 + 1e-12):
+            k = int(np.argmax(q))
+            q[k] = q[k] - ts if ts and q[k] - ts >= d * (1 - 1e-9) else 0.0
+        quantum = max(d, ts)
+        self._q_res = np.clip(target - q, -quantum, quantum)
+        return q
 
     def _mean_squares(self, segs):
         """Mean square of each channel over one period of ``segs``, unit^2, shape (m,)."""

@@ -93,10 +93,12 @@ class CostToGo:
     goal : array_like, shape (2,)
         m.
     goal_speed : float
-        Typical speed near the goal, m/s (weights the final approach).
+        Speed near the goal, m/s. The map recomputes it as the mean rate over the ring at ``near``
+        (see :meth:`value_and_gradient`); the argument is the fallback for a one-cell grid.
     near : float
-        Within this distance of the goal the map is replaced by the straight-line quadratic
-        ``|x - goal|^2 / (2 goal_speed^2)``, m (the grid is too coarse to resolve the goal).
+        Radius of the goal region, m: within it the map is the straight-line time
+        ``|x - goal| / goal_speed`` (isotropic, so the planner's squared cost is exactly quadratic
+        there), blended smoothly into the grid's values at ``near``.
     route : ndarray, shape (P, 2), optional
         The fastest path from the start the map was asked about, m (for plots and reports).
     """
@@ -111,6 +113,16 @@ class CostToGo:
         self.near = float(near)
         self.route = route
         self.res = float(self.xs[1] - self.xs[0]) if len(self.xs) > 1 else 1.0
+        if self.values.shape[0] >= 2 and self.values.shape[1] >= 2:
+            # The isotropic rate of the goal region: the ring's *least* time / distance, so every
+            # direction's remaining time can be made up in the blend band at a positive rate (the
+            # map then rises along every ray: an earlier mean-rate blend dipped, and bodies stalled
+            # on the dip in directions faster than the mean).
+            a = np.linspace(0.0, 2.0 * np.pi, 64, endpoint=False)
+            ring = self.goal + self.near * np.stack([np.cos(a), np.sin(a)], axis=1)
+            rate = float(np.min(self._grid(ring)[0])) / self.near
+            if np.isfinite(rate) and rate > 0:
+                self.goal_speed = 1.0 / rate
 
     def _cells(self, xy):
         xy = np.atleast_2d(np.asarray(xy, dtype=float))
@@ -122,35 +134,65 @@ class CostToGo:
         # Beyond the grid the map is extended linearly (fractions outside [0, 1]).
         return xy, ix, iy, fx - ix, fy - iy
 
+    def _grid(self, xy):
+        """Bilinear value (s) and gradient (s/m) of the grid at points ``xy`` (n, 2) m."""
+        xy, ix, iy, a, b = self._cells(xy)
+        V = self.values
+        v00, v10 = V[iy, ix], V[iy, ix + 1]
+        v01, v11 = V[iy + 1, ix], V[iy + 1, ix + 1]
+        val = (1 - a) * (1 - b) * v00 + a * (1 - b) * v10 + (1 - a) * b * v01 + a * b * v11
+        gx = ((1 - b) * (v10 - v00) + b * (v11 - v01)) / self.res
+        gy = ((1 - a) * (v01 - v00) + a * (v11 - v10)) / self.res
+        return val, np.stack([gx, gy], axis=1)
+
     def value_and_gradient(self, xy):
         """Time to goal (s) and its gradient (s/m) at points ``xy`` (n, 2) m.
 
-        Bilinear in each grid cell; within ``near`` of the goal the straight-line form.
+        Bilinear in each grid cell. Within ``near`` of the goal, where the grid is too coarse to
+        resolve the approach, the time along each ray ``g + r u`` is the integral of a rate that
+        blends two speeds:
+
+        - within ``r1 = near / 3`` one speed for all directions, ``goal_speed`` (the fastest on the
+          ring): the time is ``r / goal_speed``, whose square is exactly the quadratic the horizon
+          program minimises, so the final approach of many bodies at once is planned without
+          linearisation error (a direction-dependent cone, curved at its apex, made the program
+          trade one body's progress for another's on a false model);
+        - from ``r1`` to ``near`` the rate moves (smoothstep in ``r``) to the direction's own, fixed
+          so that the time at ``near`` equals the grid's there: the map is continuous across the ring
+          (a jump there would be a barrier: bodies once stalled on it a few millimetres out) and rises
+          along every ray (both rates are positive).
 
         Returns
         -------
         value : ndarray, shape (n,)
         gradient : ndarray, shape (n, 2)
         """
-        xy, ix, iy, a, b = self._cells(xy)
-        V = self.values
-        if V.shape[0] < 2 or V.shape[1] < 2:
-            d = xy - self.goal
-            return np.linalg.norm(d, axis=1) / self.goal_speed, d / self.goal_speed
-        v00, v10 = V[iy, ix], V[iy, ix + 1]
-        v01, v11 = V[iy + 1, ix], V[iy + 1, ix + 1]
-        val = (1 - a) * (1 - b) * v00 + a * (1 - b) * v10 + (1 - a) * b * v01 + a * b * v11
-        gx = ((1 - b) * (v10 - v00) + b * (v11 - v01)) / self.res
-        gy = ((1 - a) * (v01 - v00) + a * (v11 - v10)) / self.res
-        grad = np.stack([gx, gy], axis=1)
+        xy = np.atleast_2d(np.asarray(xy, dtype=float))
         d = xy - self.goal
         dist = np.linalg.norm(d, axis=1)
+        if self.values.shape[0] < 2 or self.values.shape[1] < 2:
+            u = d / np.maximum(dist, 1e-300)[:, None]
+            return dist / self.goal_speed, u / self.goal_speed
+        val, grad = self._grid(xy)
         close = dist <= self.near
         if close.any():
-            val[close] = dist[close] / self.goal_speed
+            r = dist[close]
+            u = np.where(r[:, None] > 0, d[close] / np.maximum(r, 1e-300)[:, None], 0.0)
+            Jr, Gr = self._grid(self.goal + self.near * u)
+            R, r1 = self.near, self.near / 3.0
+            k0 = 1.0 / self.goal_speed                       # s/m, inner rate
+            A = 0.5 * (R + r1)                               # integral of the blend weight over [0, R]
+            k1 = (Jr - A * k0) / (R - A)                     # outer rate of this direction, >= k0
+            t = np.clip((R - r) / (R - r1), 0.0, 1.0)
+            w = t * t * (3.0 - 2.0 * t)                      # blend weight: 1 inside r1, 0 at the ring
+            Wc = np.where(r <= r1, r, r1 + (R - r1) * (0.5 - t**3 + 0.5 * t**4))     # its integral to r
+            val[close] = k0 * Wc + k1 * (r - Wc)
+            # Radially the rate itself; across the ray k1 varies with u as J_grid does on the ring:
+            # d k1 / dx = (I - u u^T) grad J_grid(ring) / (r (R - A) / R).
+            tang = Gr - u * np.sum(u * Gr, axis=1, keepdims=True)
             with np.errstate(invalid="ignore", divide="ignore"):
-                grad[close] = np.where(dist[close, None] > 0, d[close] / np.maximum(dist[close, None], 1e-300), 0.0) \
-                    / self.goal_speed
+                across = np.where(r[:, None] > 0, ((r - Wc) * R / ((R - A) * np.maximum(r, 1e-300)))[:, None] * tang, 0.0)
+            grad[close] = u * (k0 * w + k1 * (1.0 - w))[:, None] + across
         return val, grad
 
     def value(self, xy):
@@ -196,7 +238,7 @@ class CostToGo:
 
 
 def cost_to_go(workspace, actuator, body, goal, *, start=None, resolution=None, clearance=0.0, floor=1e-3,
-               graph=None, speeds=None):
+               graph=None, speeds=None, near=None):
     """Time-to-goal map of ``body`` for ``goal``, by Dijkstra over field-weighted directed edges.
 
     Parameters
@@ -219,6 +261,9 @@ def cost_to_go(workspace, actuator, body, goal, *, start=None, resolution=None, 
         A graph from :func:`fieldplan.routes.occupancy_graph` to reuse (same body radius).
     speeds : tuple, optional
         ``(nodes, xy, speed)`` from :func:`speed_table` to reuse (same graph and body).
+    near : float, optional
+        Radius of the goal region, m (see :class:`CostToGo`); at least 1.5 grid cells, the
+        default. The planner passes three arrival radii, so the isotropic part covers the arrival disc.
 
     Returns
     -------
@@ -294,7 +339,7 @@ def cost_to_go(workspace, actuator, body, goal, *, start=None, resolution=None, 
     route = None
     if start is not None:
         route = _route_from(start, goal, xy, J, pred, g, gi)
-    return CostToGo(xs, ys, grid, reach, goal, goal_speed, near=1.5 * res, route=route)
+    return CostToGo(xs, ys, grid, reach, goal, goal_speed, near=max(1.5 * res, float(near or 0.0)), route=route)
 
 
 def _route_from(start, goal, xy, J, pred, graph, gi):

@@ -68,8 +68,8 @@ def greedy_sequence(ctrl, p, lower, upper, focus=None):
         F, d = ctrl._disp_fields(x[None])
         nxt = x[None] + d[0][None] + np.einsum("ok,kni->oni", opts, F[0])      # (O, n, 2)
         J, _ = ctrl._time_to_go(nxt)
-        J = np.maximum(J - ctrl._dead, 0.0) / ctrl.period
-        score = 0.5 * (J[:, focus] ** 2 if focus is not None else np.sum(ctrl._body_w * J**2, axis=1))
+        c = ctrl._body_cost(J) / ctrl.period**2
+        score = c[:, focus] if focus is not None else np.sum(ctrl._body_w * c, axis=1)
         score = score + ctrl._rho * ctrl._deficits(nxt) / ctrl.length_unit
         o = int(np.argmin(score))
         W[h] = opts[o]
@@ -97,8 +97,7 @@ def bracket_sequences(ctrl, p, lower, upper, count=4):
     F, dF = F[0], dF[0]                                   # (K, n, 2), (K, n, 2, 2)
     amp = np.minimum(np.abs(lower[-1]), np.abs(upper[-1]))  # a cycle needs both signs
     J, g = ctrl._time_to_go(np.asarray(p, float)[None])
-    J = np.maximum(J - ctrl._dead, 0.0)
-    grad = (ctrl._body_w * J[0])[:, None] * g[0] / ctrl.period**2        # d(cost) / dx, per m
+    grad = (ctrl._body_w * ctrl._body_slope(J[0]))[:, None] * g[0] / ctrl.period**2    # d(cost) / dx, per m
     pairs = [(a, b) for a in range(K) for b in range(a + 1, K) if amp[a] > 0 and amp[b] > 0]
     if not pairs:
         return []
