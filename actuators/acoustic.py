@@ -108,7 +108,6 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import tempfile
 import warnings
 from pathlib import Path
 
@@ -118,6 +117,7 @@ from scipy.constants import g as STANDARD_GRAVITY
 
 from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError
+from fieldplan.fileio import atomic_open
 from fieldplan.units import to_si
 
 from .plate_modes import (ALGORITHM_VERSION, PlateModes, _check_material, bending_wavenumber,
@@ -349,21 +349,14 @@ def _cache_load(directory, stem, key):
 
 
 def _cache_save(directory, stem, key, arrays):
-    """Store arrays atomically (temporary file in the same directory, then os.replace)."""
+    """Store arrays atomically (:func:`fieldplan.fileio.atomic_open`: temporary file, then rename)."""
     if directory is None:
         return False
     try:
         directory.mkdir(parents=True, exist_ok=True)
         path = directory / f"{stem}-{_digest(key)}.npz"
-        fd, tmp = tempfile.mkstemp(prefix=f".{stem}-", suffix=".npz.tmp", dir=directory)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                np.savez(fh, key=np.array(key), **arrays)
-            os.replace(tmp, path)
-        except BaseException:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            raise
+        with atomic_open(path, "wb") as fh:
+            np.savez(fh, key=np.array(key), **arrays)
         return True
     except OSError as exc:
         warnings.warn(f"plate field cache not written to {directory} ({exc}); it will be recomputed next time.",

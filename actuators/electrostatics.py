@@ -46,7 +46,6 @@ import collections
 import hashlib
 import json
 import os
-import tempfile
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -62,6 +61,7 @@ from shapely.geometry import MultiPolygon, Polygon, box
 from shapely.validation import explain_validity
 
 from fieldplan.errors import ActuatorError
+from fieldplan.fileio import atomic_open
 
 __all__ = [
     "ElectrodeLayout",
@@ -1437,17 +1437,8 @@ def _resolve_cache_dir(cache_dir):
 def _atomic_save(path, array):
     """Write ``array`` to ``path`` (.npy) so that readers never see a partial file."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".npy")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            np.save(fh, array, allow_pickle=False)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    with atomic_open(path, "wb") as fh:
+        np.save(fh, array, allow_pickle=False)
 
 
 def _try_load(path, shape):
@@ -1483,7 +1474,7 @@ class UnitResponses:
 
     Results are kept in memory (per process, a few entries) and, when a cache directory is set,
     on disk as ``.npy`` files named by a SHA-256 hash of the layout, the grid, the padding, the gap
-    model (with its partial-cell constants) and the height (written atomically: temporary file, then ``os.replace``).
+    model (with its partial-cell constants) and the height (written atomically: temporary file, then rename).
 
     Parameters
     ----------

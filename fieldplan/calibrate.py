@@ -55,6 +55,7 @@ from scipy.spatial import cKDTree
 
 from .actuator import Actuator, Channel, Primitive
 from .errors import ActuatorError, FieldplanError
+from .fileio import atomic_open, atomic_write, plain, save_figure
 from .tracking import TrackingData, TrackingDataError, VelocitySamples, read_tracks, velocity_samples
 
 __all__ = [
@@ -803,10 +804,8 @@ class CalibratedActuator(Actuator):
                 "cv_rmse_m_per_s": f.cv_rmse, "noise_rms_m_per_s": f.noise_rms,
                 "rms_speed_m_per_s": f.rms_speed, "cv_folds": f.cv_folds, "cv_grouping": f.cv_grouping,
             })
-        tmp = f"{npz_path}.tmp-{os.getpid()}"
-        with open(tmp, "wb") as fh:
+        with atomic_open(npz_path, "wb") as fh:
             np.savez(fh, **arrays)
-        os.replace(tmp, npz_path)
         src = self.fit.source
         meta = {
             "format": FORMAT, "version": FORMAT_VERSION,
@@ -821,14 +820,10 @@ class CalibratedActuator(Actuator):
             "extent_m": list(self.extent),
             "fields": meta_fields,
             "skipped": list(self.fit.skipped),
-            "tracking": _jsonable(self.fit.tracking),
+            "tracking": plain(self.fit.tracking),
             "source": {"file": src, "sha256": _sha256(src) if src and os.path.exists(src) else None},
         }
-        tmp = f"{json_path}.tmp-{os.getpid()}"
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(meta, fh, indent=2, allow_nan=True)
-            fh.write("\n")
-        os.replace(tmp, json_path)
+        atomic_write(json_path, json.dumps(meta, indent=2, allow_nan=True) + "\n")
         return json_path, npz_path
 
     @classmethod
@@ -910,18 +905,6 @@ def _sha256(path):
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             h.update(chunk)
     return h.hexdigest()
-
-
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, (np.floating, np.integer)):
-        return obj.item()
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    return obj
 
 
 # ------------------------------------------------------------------------------------------------
@@ -1468,9 +1451,7 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
             for what, fn in (("vectors", plot_vectors), ("residuals", plot_residuals), ("coverage", plot_coverage)):
                 fig = fn(fit, kind=kind)
                 p = f"{stem}-{what}{suffix}.png"
-                tmp = f"{p}.tmp-{os.getpid()}.png"
-                fig.savefig(tmp, dpi=110)
-                os.replace(tmp, p)
+                save_figure(fig, p, dpi=110)
                 plot_paths[f"{what}{suffix}"] = p
     report = {
         "actuator": json_path, "arrays": npz_path, "report": stem + "-report.json", "plots": plot_paths,
@@ -1493,9 +1474,5 @@ def calibrate_command(tracks_csv, out_dir, *, primitives=None, units=None, idle=
         report.update(actuator=moved(json_path), arrays=moved(npz_path), report=moved(stem + "-report.json"),
                       plots={k: moved(v) for k, v in plot_paths.items()})
     report_path = stem + "-report.json"
-    tmp = f"{report_path}.tmp-{os.getpid()}"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(_jsonable(report), fh, indent=2)
-        fh.write("\n")
-    os.replace(tmp, report_path)
+    atomic_write(report_path, json.dumps(plain(report), indent=2) + "\n")
     return report

@@ -16,6 +16,7 @@ import textwrap
 import time
 
 from .errors import FieldplanError, LimitError, ScenarioError
+from .fileio import atomic_write, check_output_folder, clean_stale_temps, json_safe, output_folder
 from .units import format_quantity
 
 __all__ = ["main", "build_parser", "EXIT_OK", "EXIT_NOT_REACHED", "EXIT_BAD_INPUT", "EXIT_INTERNAL"]
@@ -260,7 +261,6 @@ def _note_variants(args, sc, command, verb):
 
 def _prepare_out(args, out, inputs):
     """Refuse an output folder that may not be written, before any work; clear stale temporary folders."""
-    from .export import check_output_folder, clean_stale_temps  # noqa: PLC0415
 
     check_output_folder(out, args.force, inputs)
     for p in clean_stale_temps(out):
@@ -366,9 +366,7 @@ def _parse_seeds(text):
 
 def _cmd_compare(args):
     from .compare import compare, make_executor  # noqa: PLC0415
-    from .export import json_safe, output_folder  # noqa: PLC0415
     from .plots import save  # noqa: PLC0415
-    from .schedule import atomic_write  # noqa: PLC0415
 
     seeds = _parse_seeds(args.seeds)
     loaded, problems = _load_each(args.scenarios, args)
@@ -411,9 +409,7 @@ def _cmd_compare(args):
 def _cmd_inspect(args):
     import numpy as np  # noqa: PLC0415
 
-    from .export import output_folder  # noqa: PLC0415
     from .plots import plot_primitive_fields, save  # noqa: PLC0415
-    from .schedule import atomic_write  # noqa: PLC0415
 
     sc = _load(args.scenario, args)
     _note_variants(args, sc, "inspect", "inspects")
@@ -477,7 +473,6 @@ def _cmd_inspect(args):
                         "counts": np.asarray(cc.counts).tolist(), "fraction": np.asarray(cc.fraction).tolist()}
                 lines.append("")
         atomic_write(os.path.join(tmp, "inspect.md"), "\n".join(lines) + "\n")
-        from .export import json_safe  # noqa: PLC0415
 
         atomic_write(os.path.join(tmp, "inspect.json"), json.dumps(json_safe(report), indent=1, allow_nan=False))
     _say(args, *lines)
@@ -589,7 +584,6 @@ def _cmd_fit(args):
         from .calibrate import calibrate_command  # noqa: PLC0415
     except ImportError as exc:
         raise _UserError(f"calibration is not available ({exc}).") from None
-    from .export import output_folder  # noqa: PLC0415
 
     if not os.path.exists(args.tracks):
         raise _UserError(f"{args.tracks}: no such tracking file.")

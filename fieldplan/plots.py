@@ -15,6 +15,8 @@ import os
 
 import numpy as np
 
+from .fileio import atomic_path, save_figure
+
 __all__ = ["length_unit", "axis_label", "plot_workspace", "plot_timeline", "plot_inputs", "plot_primitive_fields",
            "animate", "save", "speed_backdrop"]
 
@@ -57,11 +59,7 @@ def _figure(**kw):
 
 def save(fig, path, dpi=120):
     """Save ``fig`` to ``path`` (PNG) through a temporary file, then rename."""
-    path = os.fspath(path)
-    tmp = f"{path}.tmp-{os.getpid()}.png"
-    fig.savefig(tmp, dpi=dpi)
-    os.replace(tmp, path)
-    return path
+    return save_figure(fig, path, dpi=dpi)
 
 
 def _primitive_velocities(actuator, body, medium, pts, prims):
@@ -791,8 +789,6 @@ def animate(path, workspace, bodies, times, positions, goals, *, frames=48, fps=
     fig.draw_without_rendering()
     fig.set_layout_engine("none")
     anim = FuncAnimation(fig, update, frames=len(ts), blit=False)
-    path = os.fspath(path)
-    tmp = f"{path}.tmp-{os.getpid()}.gif"
-    anim.save(tmp, writer=PillowWriter(fps=fps), dpi=dpi)
-    os.replace(tmp, path)
-    return path
+    with atomic_path(path) as tmp:
+        anim.save(tmp, writer=PillowWriter(fps=fps), dpi=dpi)
+    return os.fspath(path)

@@ -29,6 +29,7 @@ import shapely
 import yaml
 
 from .errors import FieldplanError, ScenarioError, UnitError
+from .fileio import plain
 from .units import to_si
 
 __all__ = [
@@ -2070,25 +2071,6 @@ def load_scenario(path_or_text, *, name=None, allow_modules=(), on_import=None, 
 # Object -> YAML
 # ----------------------------------------------------------------------------------------------
 
-def _plain(v):
-    """numpy and tuples -> plain lists and floats for YAML."""
-    if isinstance(v, np.ndarray):
-        return _plain(v.tolist())
-    if isinstance(v, (list, tuple)):
-        return [_plain(x) for x in v]
-    if isinstance(v, dict):
-        return {str(k): _plain(x) for k, x in v.items()}
-    if isinstance(v, (np.floating,)):
-        return float(v)
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (np.bool_,)):
-        return bool(v)
-    if dataclasses.is_dataclass(v) and not isinstance(v, type):
-        return {f.name: _plain(getattr(v, f.name)) for f in dataclasses.fields(v)}
-    return v
-
-
 def _shape_dict(g):
     import shapely  # noqa: PLC0415
 
@@ -2111,7 +2093,7 @@ def _actuator_config(act):
     if callable(to_config):
         d = dict(to_config())
         d.setdefault("type", _registry_name(type(act)))
-        return _plain(d)
+        return plain(d)
     d = {"type": _registry_name(type(act))}
     for n, (default, _) in actuator_params(type(act)).items():
         if not hasattr(act, n):
@@ -2120,7 +2102,7 @@ def _actuator_config(act):
         v = getattr(act, n)
         if default is not _MISSING and _same(v, default):
             continue
-        d[n] = _plain(v)
+        d[n] = plain(v)
         if not _is_plain(d[n]):
             raise FieldplanError(f"{type(act).__name__} parameter {n!r} holds a {type(v).__name__}, which a scenario "
                                  "file cannot hold; give the actuator a to_config() method returning plain data.")
@@ -2158,7 +2140,7 @@ def scenario_to_dict(sc):
         for k in ("moment", "susceptibility", "saturation_magnetization", "permittivity", "conductivity",
                   "surface_conductance", "drift_mobility"):
             if getattr(b, k) is not None:
-                d[k] = _plain(getattr(b, k))
+                d[k] = plain(getattr(b, k))
         if b.shell is not None:
             d["shell"] = dataclasses.asdict(b.shell)
         bodies.append(d)
@@ -2170,8 +2152,8 @@ def scenario_to_dict(sc):
                    "relative_permittivity": med.relative_permittivity, "conductivity": med.conductivity,
                    "submerged": med.submerged},
         "bodies": bodies,
-        "starts": {"positions": _plain(sc.starts)},
-        "goals": {"positions": _plain(sc.goals), "unlabelled": bool(sc.assign_goals)},
+        "starts": {"positions": plain(sc.starts)},
+        "goals": {"positions": plain(sc.goals), "unlabelled": bool(sc.assign_goals)},
         "actuator": sc.config.get("actuator") or _actuator_config(sc.actuator),
     }
     if sc.description:
@@ -2186,9 +2168,9 @@ def scenario_to_dict(sc):
             d["channels"] = chans
         out["limits"] = d
     elif sc.config.get("limits"):
-        out["limits"] = _plain(sc.config["limits"])     # actuator not imported: limits as given, unchecked
-    out["planner"] = dict(mode=sc.mode, **_plain(sc.planner))
-    out["simulation"] = _plain(dataclasses.asdict(sc.simulation))
+        out["limits"] = plain(sc.config["limits"])     # actuator not imported: limits as given, unchecked
+    out["planner"] = dict(mode=sc.mode, **plain(sc.planner))
+    out["simulation"] = plain(dataclasses.asdict(sc.simulation))
     o = dataclasses.asdict(sc.outputs)
     o["plots"] = list(o["plots"])
     out["outputs"] = {k: v for k, v in o.items() if v is not None}

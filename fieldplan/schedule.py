@@ -18,15 +18,14 @@ import csv
 import io
 import json
 import math
-import os
 import re
-import tempfile
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
 from .actuator import Channel, Segment
 from .errors import FieldplanError, LimitError
+from .fileio import atomic_write
 from .units import format_quantity
 
 __all__ = ["ChannelLimit", "HardwareLimits", "Schedule", "atomic_write", "LIMIT_RTOL", "within_limit",
@@ -87,33 +86,6 @@ def default_resolution(channel):
     if not span > 0:
         span = max(abs(channel.lower), abs(channel.upper), 1.0)
     return 10.0 ** (math.floor(math.log10(span)) - DEFAULT_RESOLUTION_DIGITS)
-
-
-def umask_mode(mode=0o666):
-    """``mode`` with the process umask applied: what ``open()`` would give a new file (0o777 for folders)."""
-    mask = os.umask(0o022)   # reading the umask means setting it; put it straight back
-    os.umask(mask)
-    return mode & ~mask
-
-
-def atomic_write(path, text, mode="w"):
-    """Write ``text`` to ``path`` through a temporary file in the same folder, then rename.
-
-    The file gets the permissions a plain ``open()`` would give it (the user's umask), not the
-    owner-only mode of a temporary file.
-    """
-    path = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=folder)
-    try:
-        os.fchmod(fd, umask_mode())
-        with os.fdopen(fd, mode, newline="" if "b" not in mode else None) as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
 
 
 @dataclass(frozen=True)

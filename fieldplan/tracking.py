@@ -43,6 +43,7 @@ import numpy as np
 from scipy.signal import savgol_coeffs, savgol_filter
 
 from .errors import FieldplanError, UnitError
+from .fileio import atomic_open
 from .units import to_si, ureg
 
 __all__ = [
@@ -821,8 +822,7 @@ def write_tracks(path, data, *, length_unit="um", time_unit="s", comment=None):
     lf = to_si(f"1 {length_unit}", "m", name="length_unit")
     tf = to_si(f"1 {time_unit}", "s", name="time_unit")
     chans = list(data.channels)
-    tmp = f"{path}.tmp-{os.getpid()}"
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+    with atomic_open(path, "w") as fh:
         for ln in (comment or "").splitlines():
             fh.write(f"# {ln}\n")
         w = csv.writer(fh)
@@ -840,7 +840,6 @@ def write_tracks(path, data, *, length_unit="um", time_unit="s", comment=None):
                 row.append(data.kind[i])
             row += [f"{v:.9g}" for v in data.primitive_values.get(str(data.primitive[i]), ())]
             w.writerow(row)
-    os.replace(tmp, path)
 
 
 # ------------------------------------------------------------------------------------------------

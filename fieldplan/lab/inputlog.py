@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import FieldplanError
-from ..schedule import atomic_write
+from ..fileio import atomic_write
 
 __all__ = ["InputLog", "InputLogError", "read_input_log", "LOG_NOTE_COLUMNS"]
 
