@@ -23,6 +23,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import FieldplanError
+from .live import closed_loop
+from .plan import plan
+from .schedule import Schedule
+from .simulate import compute_metrics, rollout
 from .units import format_quantity, si_scale
 
 __all__ = ["TrialResult", "RunResult", "run_scenario", "replay_schedule_for", "Comparison", "compare",
@@ -183,8 +187,6 @@ def _quantised(schedule, limits):
 
 def replay_schedule_for(scenario, schedule):
     """Check that a schedule read from a file fits the scenario's actuator; returns it on its channels."""
-    from .schedule import Schedule  # noqa: PLC0415
-
     names = [c.name for c in scenario.actuator.channels]
     got = [c.name for c in schedule.channels]
     if got != names:
@@ -220,8 +222,6 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
     LimitError
         The schedule breaks a declared limit.
     """
-    from .simulate import compute_metrics, rollout  # noqa: PLC0415
-
     sc = scenario
     sim = sc.simulation
     n_trials = sim.trials if trials is None else int(trials)
@@ -233,11 +233,6 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
         run.schedule = _quantised(replay_schedule_for(sc, schedule), sc.limits)
         run.plan_source = "replay"
     elif sc.mode == "open_loop":
-        try:
-            from .plan import plan  # noqa: PLC0415
-        except ImportError as exc:
-            raise FieldplanError(f"the planner (fieldplan.plan) is not available ({exc}); replay a schedule "
-                                 "with --schedule instead.") from None
         t0 = time.perf_counter()
         res = plan(sc.actuator, sc.bodies, sc.workspace, sc.starts, sc.goals, limits=sc.limits,
                    settings=sc.plan_settings(), rng=seed0, **({"progress": True} if progress else {}))
@@ -249,8 +244,6 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
     if run.schedule is not None:
         run.schedule.check(sc.limits)
     if sc.mode == "closed_loop" and schedule is None:
-        closed_loop = _closed_loop()
-
         t_plan = 0.0
         for k in _progress(range(n_trials or 1), n_trials or 1, progress, "trials"):
             t0 = time.perf_counter()
@@ -259,21 +252,21 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
                                brownian=sim.brownian, tracking_noise=sim.tracking_noise, latency=sim.latency,
                                **sim.simulator_options())
             t_plan += time.perf_counter() - t0
-            g = _assigned_goals(live, goals)
-            sched = getattr(live, "schedule", None)
+            g = np.asarray(live.goals if live.goals is not None else goals, dtype=float)
+            sched = live.schedule
             times = np.asarray(live.times, dtype=float)
             pos = np.asarray(live.positions, dtype=float)
-            m = compute_metrics(times, pos, sc.bodies, g, tol, sched, getattr(live, "events", ()))
+            m = compute_metrics(times, pos, sc.bodies, g, tol, sched, live.events)
             if k == 0:
                 run.schedule = _quantised(sched, sc.limits)
                 if run.schedule is not None:
                     run.schedule.meta["origin"] = (f"inputs played in trial 1 of the closed loop (seed {seed0}); "
                                                    "later trials re-planned and played different inputs")
                 run.goals = g
-                run.step_times = list(getattr(live, "step_times", []) or [])
-                run.routes = getattr(live, "routes", None)
+                run.step_times = list(live.step_times)
+                run.routes = live.routes
                 run.plan_success = None
-                run.plan_message = getattr(live, "message", "")
+                run.plan_message = live.message
             if n_trials:
                 run.trials.append(TrialResult(seed0 + k, bool(m.get("all_reached", False)),
                                               _miss_message(sc, m), times, pos, m, sched))
@@ -288,17 +281,6 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
     return run
 
 
-def _closed_loop():
-    for mod in ("live", "plan"):
-        try:
-            module = __import__(f"fieldplan.{mod}", fromlist=["closed_loop"])
-        except ImportError:
-            continue
-        if hasattr(module, "closed_loop"):
-            return module.closed_loop
-    raise FieldplanError("planner.mode closed_loop needs fieldplan.live.closed_loop, which is not available.")
-
-
 def _miss_message(sc, m):
     if m.get("all_reached"):
         return "all bodies reached their goals"
@@ -306,32 +288,20 @@ def _miss_message(sc, m):
                      for i, b in enumerate(sc.bodies) if not m["reached"][i])
 
 
-def _assigned_goals(res, goals):
-    for name in ("goals", "assigned_goals"):
-        g = getattr(res, name, None)
-        if g is not None:
-            return np.asarray(g, dtype=float)
-    a = getattr(res, "assignment", None)
-    if a is not None:
-        return np.asarray(goals, dtype=float)[np.asarray(a, dtype=int)]
-    return np.asarray(goals, dtype=float)
-
-
 def _take_plan(run, res):
+    """Copy what a :class:`~fieldplan.plan.PlanResult` reports onto ``run``."""
     run.plan_success = bool(res.success)
-    run.plan_status = getattr(res, "status", None)
-    run.plan_message = str(getattr(res, "message", ""))
-    run.step_times = [float(x) for x in (getattr(res, "step_times", None) or [])]
-    run.stalls = [str(s) for s in (getattr(res, "stalls", None) or [])]
-    run.bodies_report = list(getattr(res, "bodies_report", None) or [])
-    routes = getattr(res, "routes", None)
-    run.routes = [np.asarray(r, dtype=float) for r in routes] if routes is not None else None
-    t = getattr(res, "times", None)
-    p = getattr(res, "positions", None)
-    if t is not None and p is not None and len(t):
-        run.predicted_times = np.asarray(t, dtype=float)
-        run.predicted_positions = np.asarray(p, dtype=float)
-    run.goals = _assigned_goals(res, run.goals)
+    run.plan_status = res.status
+    run.plan_message = str(res.message)
+    run.step_times = [float(x) for x in res.step_times]
+    run.stalls = [str(s) for s in res.stalls]
+    run.bodies_report = list(res.bodies_report)
+    run.routes = [np.asarray(r, dtype=float) for r in res.routes]
+    if res.times is not None and res.positions is not None and len(res.times):
+        run.predicted_times = np.asarray(res.times, dtype=float)
+        run.predicted_positions = np.asarray(res.positions, dtype=float)
+    if res.goals is not None:
+        run.goals = np.asarray(res.goals, dtype=float)
 
 
 # ----------------------------------------------------------------------------------------------

@@ -25,20 +25,21 @@ from __future__ import annotations
 
 import collections
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
 from .actuator import Segment
 from .body import check_bodies, check_positions
 from .errors import FieldplanError, WorkspaceError
+from .result import Result
 from .planning import make_controller
 
 __all__ = ["run_live", "closed_loop", "LiveResult"]
 
 
-@dataclass
-class LiveResult:
+@dataclass(kw_only=True)
+class LiveResult(Result):
     """Outcome of a live (or closed-loop simulated) run.
 
     Attributes
@@ -83,25 +84,10 @@ class LiveResult:
         Hardware-limit violations of ``schedule`` (empty when it passes ``schedule.check(limits)``).
     """
 
-    success: bool
-    status: int
-    message: str
-    times: np.ndarray
-    positions: np.ndarray
-    schedule: object
-    step_times: list = field(default_factory=list)
-    stalls: list = field(default_factory=list)
     dropped: int = 0
-    routes: list = field(default_factory=list)
-    goals: np.ndarray | None = None
-    bodies_report: list = field(default_factory=list)
     estimates: np.ndarray | None = None
     estimate_times: np.ndarray | None = None
-    events: list = field(default_factory=list)
-    metrics: dict = field(default_factory=dict)
     time_to_goal: float = float("nan")
-    notes: list = field(default_factory=list)
-    violations: list = field(default_factory=list)
 
     def __repr__(self):
         return (f"LiveResult(success={self.success}, status={self.status}, message={self.message!r}, "
@@ -279,9 +265,10 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
                "final_error": float(err[i]), "reason": reasons[i]} for i, b in enumerate(controller.bodies)]
     times = np.asarray(est_times, dtype=float)
     positions = np.asarray(est_hist, dtype=float).reshape(-1, n, 2)
-    return LiveResult(status == 0, status, message, times, positions, schedule, step_times,
-                      list(controller.stalls), dropped, list(getattr(controller, "routes", [])),
-                      controller.goals.copy(), report, positions.copy(), times.copy(),
+    return LiveResult(success=status == 0, status=status, message=message, times=times, positions=positions,
+                      schedule=schedule, step_times=step_times, stalls=list(controller.stalls), dropped=dropped,
+                      routes=list(getattr(controller, "routes", [])), goals=controller.goals.copy(),
+                      bodies_report=report, estimates=positions.copy(), estimate_times=times.copy(),
                       notes=list(controller.notes), violations=viol)
 
 
@@ -385,7 +372,9 @@ def closed_loop(model, truth, bodies, workspace, starts, goals, *, limits=None, 
                + msg)
         if truth_ok:
             truth_ok, status = False, 6
-    return LiveResult(truth_ok, 0 if truth_ok else status, msg, times, pos, res.schedule, res.step_times,
-                      res.stalls, res.dropped, res.routes, res.goals, res.bodies_report, res.estimates,
-                      res.estimate_times, list(sim.events), metrics, float(metrics.get("time_to_goal", np.nan)),
-                      res.notes, list(res.violations))
+    return LiveResult(success=truth_ok, status=0 if truth_ok else status, message=msg, times=times, positions=pos,
+                      schedule=res.schedule, step_times=res.step_times, stalls=res.stalls, dropped=res.dropped,
+                      routes=res.routes, goals=res.goals, bodies_report=res.bodies_report, estimates=res.estimates,
+                      estimate_times=res.estimate_times, events=list(sim.events), metrics=metrics,
+                      time_to_goal=float(metrics.get("time_to_goal", np.nan)), notes=res.notes,
+                      violations=list(res.violations))

@@ -28,7 +28,7 @@ from __future__ import annotations
 import collections
 import dataclasses
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -37,6 +37,7 @@ from .body import check_bodies, check_positions
 from .control import (StepData, StepProgram, pair_slots, point_at, polyline_arclength, project_to_route,
                       reference_points, variation_length)
 from .errors import WorkspaceError
+from .result import Result
 from .planning import Controller, PlanSettings, check_goals, make_controller
 from .planning.base import ControllerBase, _directional_speed
 from .routes import plan_routes, route_length
@@ -691,8 +692,8 @@ class StepController(ControllerBase):
         return out
 
 
-@dataclass
-class PlanResult:
+@dataclass(kw_only=True)
+class PlanResult(Result):
     """Outcome of :func:`plan`.
 
     Attributes
@@ -729,21 +730,7 @@ class PlanResult:
         Largest soft-constraint slack of any step, m.
     """
 
-    success: bool
-    status: int
-    message: str
-    schedule: object
-    routes: list
-    times: np.ndarray
-    positions: np.ndarray
-    bodies_report: list
-    step_times: list
-    stalls: list
     period: float = 0.0
-    goals: np.ndarray | None = None
-    metrics: dict = field(default_factory=dict)
-    violations: list = field(default_factory=list)
-    notes: list = field(default_factory=list)
     max_slack: float = 0.0
 
     def __repr__(self):
@@ -874,8 +861,10 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
         message = f"the schedule breaks a declared hardware limit: {viol[0]}{more}; " + message
         report = [dict(r, reason=r["reason"] or "the schedule breaks a declared hardware limit") for r in report]
     max_slack = max([r["max_slack"] for r in ctrl.records], default=0.0)
-    return PlanResult(success, status, message, schedule, ctrl.routes, times, pos, report, step_times,
-                      list(ctrl.stalls), T, ctrl.goals.copy(), metrics, viol, list(ctrl.notes), max_slack)
+    return PlanResult(success=success, status=status, message=message, schedule=schedule, routes=ctrl.routes,
+                      times=times, positions=pos, bodies_report=report, step_times=step_times,
+                      stalls=list(ctrl.stalls), period=T, goals=ctrl.goals.copy(), metrics=metrics, violations=viol,
+                      notes=list(ctrl.notes), max_slack=max_slack)
 
 
 def capability_curve(actuator, bodies_factory, workspace, Ns, trials=20, rng=0, *, settings=None, truth=None,

@@ -11,13 +11,14 @@ by projection and counted as contact events.
 from __future__ import annotations
 
 import collections
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
 from .actuator import _group_bodies
 from .errors import WorkspaceError
 from .physics import diffusion_coefficient, inertial_relaxation_time
+from .result import Result
 
 __all__ = ["Event", "Simulator", "Rollout", "rollout", "compute_metrics", "check_placement"]
 
@@ -232,30 +233,15 @@ class Simulator:
         return np.asarray(times), np.asarray(hist)
 
 
-@dataclass
-class Rollout:
-    """One simulated execution.
+@dataclass(kw_only=True)
+class Rollout(Result):
+    """One simulated execution of a schedule (:class:`fieldplan.result.Result`).
 
-    Attributes
-    ----------
-    times : ndarray, shape (T,)
-        s.
-    positions : ndarray, shape (T, n, 2)
-        True positions, m.
-    events : list of Event
-    metrics : dict
-        See :func:`compute_metrics`.
-    success : bool
-        Every body ended within tolerance of its goal (False when no goals were given).
-    message : str
+    ``positions`` are the true positions, m; ``events`` the contacts (:class:`Event`); ``success``
+    means every body ended within tolerance of its goal (False when no goals were given), and
+    ``status`` is then 0 (1 otherwise); ``schedule`` is the schedule played and ``goals`` the goals
+    it was measured against.
     """
-
-    times: np.ndarray
-    positions: np.ndarray
-    events: list
-    metrics: dict = field(default_factory=dict)
-    success: bool = False
-    message: str = ""
 
 
 def compute_metrics(times, positions, bodies, goals=None, tolerance=None, schedule=None, events=()):
@@ -361,8 +347,10 @@ def rollout(schedule, actuator, bodies, workspace, starts, goals=None, *, tolera
     times, pos = sim.history()
     metrics = compute_metrics(times, pos, bodies, goals, tolerance, schedule, sim.events)
     if goals is None:
-        return Rollout(times, pos, sim.events, metrics, False, "no goals given")
+        return Rollout(success=False, status=1, message="no goals given", times=times, positions=pos,
+                       schedule=schedule, events=sim.events, metrics=metrics)
     missed = [f"body {i} ({b.name}) ended {metrics['final_error'][i]:.3g} m from its goal"
               for i, b in enumerate(bodies) if not metrics["reached"][i]]
     msg = "all bodies reached their goals" if not missed else "; ".join(missed)
-    return Rollout(times, pos, sim.events, metrics, not missed, msg)
+    return Rollout(success=not missed, status=1 if missed else 0, message=msg, times=times, positions=pos,
+                   schedule=schedule, goals=np.asarray(goals, dtype=float), events=sim.events, metrics=metrics)
