@@ -50,7 +50,7 @@ Residual flexibility of the truncated modes
     brings the median error of the drive-point receptance between the resonances from 14 % to
     0.3 % (200 x 200 mm plate, drive 36 mm off centre) and from 23 % to 2 % (120 x 100 mm, drive
     24 mm off centre, nearer the edges), and that of grad |w|^2 within 10 mm of the drive from 30 %
-    to 2.5 % (tests/test_acoustic.py). A base drive loads the plate uniformly, whose
+    to 2.5 % (tests/actuators/test_acoustic.py). A base drive loads the plate uniformly, whose
     high modes take part only weakly (their participation ``Gamma_m`` falls with order), so no
     residual is added there; the tests check that its response has converged at the default margin.
 
@@ -115,13 +115,21 @@ import numpy as np
 from scipy import special
 from scipy.constants import g as STANDARD_GRAVITY
 
-from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
+from fieldplan.contract.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError
 from fieldplan.fileio import atomic_open
 from fieldplan.units import to_si
 
-from .plate_modes import (ALGORITHM_VERSION, PlateModes, _check_material, bending_wavenumber,
-                          flexural_rigidity, parse_edges, parse_supports, plate_modes)
+from .plate_modes import (
+    ALGORITHM_VERSION,
+    PlateModes,
+    _check_material,
+    bending_wavenumber,
+    flexural_rigidity,
+    parse_edges,
+    parse_supports,
+    plate_modes,
+)
 
 __all__ = [
     "Plate",

@@ -12,7 +12,7 @@ The chain, each step a plain function or small class over arrays:
    half-space single-layer operator (FFT, exact free-space convolution or periodic) by
    preconditioned conjugate gradients. Electrode edges fall inside grid cells (area fractions with
    a fitted Robin blend), so errors are second order in the spacing. Measured against the exact
-   conformal-map solution of an infinite interdigitated array (tests/test_electrostatics.py):
+   conformal-map solution of an infinite interdigitated array (tests/actuators/test_electrostatics.py):
    with 8 spacings across the narrowest strip or gap, ``|E|^2`` and ``d|E|^2/dz`` are within
    0.2-0.4 % at a height of one strip width and 0.1 % far above; with 4 spacings about 1 %
    (a ResolutionWarning from the actuator below that, :func:`resolution_problems`). Isolated
@@ -1223,7 +1223,7 @@ def normal_field_fields(normal_field, grid, z, *, _spectrum=None):
 
 
 #: Fewest grid spacings across the narrowest electrode or gap before :func:`resolution_problems`
-#: reports it. Measured against the exact periodic solution (tests/test_electrostatics.py): with 4
+#: reports it. Measured against the exact periodic solution (tests/actuators/test_electrostatics.py): with 4
 #: spacings across the narrowest feature the insulating model's |E|^2 is within about 1 % at a height
 #: of that feature's width; the error grows fast below.
 RESOLUTION_SPACINGS = 4

@@ -1,8 +1,8 @@
 """The one result base: what a plan, a live run and a rollout all report.
 
 :class:`Result` holds the fields every outcome of moving bodies shares (scipy's ``OptimizeResult``
-is the model: ``success``, ``status``, ``message`` plus the data). :class:`~fieldplan.plan.PlanResult`,
-:class:`~fieldplan.live.LiveResult` and :class:`~fieldplan.simulate.Rollout` extend it, so code that
+is the model: ``success``, ``status``, ``message`` plus the data). :class:`~fieldplan.planning.plan.PlanResult`,
+:class:`~fieldplan.planning.live.LiveResult` and :class:`~fieldplan.world.simulate.Rollout` extend it, so code that
 reads an outcome (comparison tables, exports, plots) reads the same names from each.
 """
 
@@ -36,7 +36,7 @@ class Result:
     goals : ndarray, shape (n, 2), or None
         After assignment (unlabelled goals), m.
     metrics : dict
-        :func:`fieldplan.simulate.compute_metrics` of ``times``/``positions``.
+        :func:`fieldplan.world.simulate.compute_metrics` of ``times``/``positions``.
     events : list
         Contacts with bodies and walls (simulated runs).
     routes : list of ndarray (P_i, 2)
