@@ -1431,7 +1431,11 @@ class CoilArray(Actuator):
         return out
 
     def hardware_limits(self, **kwargs):
-        """:class:`fieldplan.contract.schedule.HardwareLimits` from :meth:`rms_limits` (``kwargs`` passed on)."""
+        """The coils' declared limits (:meth:`rms_limits`): current bounds, RMS current over the thermal time constant.
+
+        ``kwargs`` (``time_step``, ``min_dwell``) are passed to
+        :class:`fieldplan.contract.schedule.HardwareLimits`. Scenarios start from these limits.
+        """
         from fieldplan.contract.schedule import HardwareLimits
 
         return HardwareLimits(self.rms_limits(), **kwargs)

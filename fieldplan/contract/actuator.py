@@ -278,6 +278,21 @@ class Actuator(abc.ABC):
         """Channel values at rest, shape (m,)."""
         return np.array([c.idle for c in self.channels], dtype=float)
 
+    def hardware_limits(self):
+        """The limits the hardware itself declares; scenarios start from these and may only tighten them.
+
+        The default is the channel bounds. A model that knows more overrides it (a coil array
+        declares each coil's RMS current over its thermal time constant), so a limit of the
+        hardware is written once, in the actuator, and reaches every schedule planned for it.
+
+        Returns
+        -------
+        fieldplan.contract.schedule.HardwareLimits
+        """
+        from .schedule import HardwareLimits  # noqa: PLC0415 - schedule imports this module (Channel, Segment)
+
+        return HardwareLimits.from_channels(self.channels)
+
     def describe(self):
         """One-line human summary."""
         return f"{type(self).__name__} with {len(self.channels)} channels, tags {sorted(self.tags)}"

@@ -465,7 +465,7 @@ def read_limits(ctx, spec, actuator):
         return BAD
     chans = {c.name: c for c in actuator.channels}
     if spec is None:
-        return HardwareLimits.from_channels(actuator.channels)
+        return actuator.hardware_limits()
     if not check_keys(ctx, path, spec, "limits"):
         return BAD
     top = read_keys(ctx, path, spec, "limits")
@@ -520,11 +520,27 @@ def read_limits(ctx, spec, actuator):
         per[name] = one(p, d, chans[name].unit)
     if common is BAD or any(v is BAD for v in per.values()) or any(v is BAD for v in top.values()):
         return BAD
+    declared = actuator.hardware_limits()
     limits = {}
     for name, c in chans.items():
-        d = {"lower": c.lower, "upper": c.upper}
-        d.update({k: v for k, v in common.items() if v is not None})
-        d.update({k: v for k, v in per.get(name, {}).items() if v is not None})
+        base = declared.get(name)
+        d = {"lower": c.lower if base.lower is None else max(base.lower, c.lower),
+             "upper": c.upper if base.upper is None else min(base.upper, c.upper)}
+        d.update({k: getattr(base, k) for k in ("slew_rate", "min_dwell", "rms", "rms_window", "resolution")
+                  if getattr(base, k) is not None})
+        given = {k: v for k, v in common.items() if v is not None}
+        given.update({k: v for k, v in per.get(name, {}).items() if v is not None})
+        where = {k: path + (("channels", name) if k in per.get(name, {}) else ("all_channels",)) + (k,) for k in given}
+        # Bounds the hardware declares inside the channel's own range are limits; the channel range
+        # itself is enforced by the actuator, so a scenario bound beyond it is harmless.
+        strict = {k: v for k, v in d.items() if k not in ("lower", "upper")}
+        if base.lower is not None and base.lower > c.lower:
+            strict["lower"] = base.lower
+        if base.upper is not None and base.upper < c.upper:
+            strict["upper"] = base.upper
+        if not _tightens(ctx, name, c.unit, strict, given, where, type(actuator).__name__):
+            return BAD
+        d.update(given)
         lo, hi = max(d["lower"], c.lower), min(d["upper"], c.upper)
         if lo > hi:
             p = path + ("channels", name) if name in per else path + ("all_channels",)
@@ -536,7 +552,32 @@ def read_limits(ctx, spec, actuator):
         except FieldplanError as exc:
             ctx.err(path + ("channels", name), str(exc))
             return BAD
-    return HardwareLimits(limits, time_step=top["time_step"], min_dwell=top["min_dwell"])
+    return HardwareLimits(limits, time_step=top["time_step"] if top["time_step"] is not None else declared.time_step,
+                          min_dwell=top["min_dwell"] if top["min_dwell"] is not None else declared.min_dwell)
+
+
+def _tightens(ctx, channel, unit, declared, given, where, actuator_name):
+    """Whether every limit in ``given`` is at least as strict as the actuator's declared one (errors recorded).
+
+    A scenario may tighten what the hardware declares (:meth:`Actuator.hardware_limits`), never
+    loosen it: a larger upper bound, slew rate or RMS current, a smaller lower bound or minimum
+    dwell, or a longer RMS window than declared is refused, naming the key and the declared value.
+    """
+    looser = {"upper": lambda new, old: new > old, "slew_rate": lambda new, old: new > old,
+              "rms": lambda new, old: new > old, "lower": lambda new, old: new < old,
+              "min_dwell": lambda new, old: new < old, "rms_window": lambda new, old: new > old}
+    ok = True
+    for key, new in given.items():
+        old = declared.get(key)
+        if key == "rms_window" and declared.get("rms") is None:
+            continue        # no declared RMS limit: any window is the scenario's own
+        if old is not None and looser[key](new, old):
+            u = {"slew_rate": f"{unit}/s", "min_dwell": "s", "rms_window": "s"}.get(key, unit)
+            ctx.err(where[key], f"{new:g} {u} for channel {channel!r} is looser than the {old:g} {u} that "
+                                f"{actuator_name} declares (hardware_limits()); a scenario may tighten a declared "
+                                "limit, not loosen it.")
+            ok = False
+    return ok
 
 
 def read_planner(ctx, spec):

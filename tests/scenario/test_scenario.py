@@ -1,5 +1,6 @@
 """Scenario files: YAML with line numbers, schema validation, object building and round trips."""
 
+import pathlib
 import textwrap
 
 import numpy as np
@@ -262,3 +263,52 @@ def test_shipped_scenarios_round_trip(name):
         for body in {x.name: x for x in sc.bodies}.values():
             np.testing.assert_allclose(b.velocity(body, back.medium, xy, prim),
                                        a.velocity(body, sc.medium, xy, prim), rtol=1e-12, atol=0)
+
+
+COILS = textwrap.dedent("""\
+    workspace: {boundary: {rectangle: [-2 mm, -2 mm, 2 mm, 2 mm]}}
+    bodies: [{kind: magnet, radius: 100 um, density: 7500 kg/m^3, moment: [0, 0, 1e-9]}]
+    starts: [[0, 0]]
+    goals: [[1 mm, 0]]
+    actuator:
+      type: coil-array
+      bead_models: fixed
+      coils:
+        - {center: [-6 mm, 0, -2 mm], axis: [0, 0, 1], radius: 3 mm, turns: 100, current_limit: 1 A,
+           rms_current: 0.6 A, thermal_time_constant: 2 s}
+        - {center: [6 mm, 0, -2 mm], axis: [0, 0, 1], radius: 3 mm, turns: 100, current_limit: 1 A}
+    """)
+
+
+def test_limits_start_from_what_the_actuator_declares():
+    """The coil's RMS rating reaches the scenario's limits without being repeated there."""
+    pytest.importorskip("fieldplan.actuators.magnetic")
+    sc = load(COILS)
+    assert sc.limits.get("coil_1").rms == pytest.approx(0.6) and sc.limits.get("coil_1").rms_window == 2.0
+    assert sc.limits.get("coil_2").rms is None
+    assert sc.limits.get("coil_1").upper == pytest.approx(1.0)
+    # with a limits section too: the declared RMS stays, the scenario adds its own
+    sc = load(COILS + "limits:\n  all_channels: {slew_rate: 50 A/s}\n")
+    assert sc.limits.get("coil_1").rms == pytest.approx(0.6) and sc.limits.get("coil_2").slew_rate == 50.0
+
+
+def test_a_scenario_may_tighten_a_declared_limit_but_not_loosen_it():
+    pytest.importorskip("fieldplan.actuators.magnetic")
+    sc = load(COILS + "limits:\n  channels:\n    coil_1: {rms: 0.4 A, rms_window: 1 s}\n")
+    assert sc.limits.get("coil_1").rms == pytest.approx(0.4) and sc.limits.get("coil_1").rms_window == 1.0
+    text = COILS + "limits:\n  channels:\n    coil_1: {rms: 0.9 A}\n"
+    ps = problems(text)
+    assert ps[0][2] == "limits.channels.coil_1.rms" and "looser than the 0.6 A that CoilArray declares" in ps[0][3]
+    assert ps[0][1] == line_of(text, "rms: 0.9 A")
+    text = COILS + "limits:\n  all_channels: {rms: 0.5 A, rms_window: 5 s}\n"
+    ps = problems(text)
+    assert [p[2] for p in ps] == ["limits.all_channels.rms_window"]     # coil_2 declares no RMS: any window
+
+
+def test_the_shipped_coil_scenario_gets_its_rms_limit_from_the_coils():
+    pytest.importorskip("fieldplan.actuators.magnetic")
+    path = pathlib.Path(__file__).resolve().parents[2] / "scenarios" / "coils.yaml"
+    assert "rms: 1.5 A" not in path.read_text()
+    sc = load_scenario(path)
+    assert all(sc.limits.get(c.name).rms == pytest.approx(1.5) for c in sc.actuator.channels)
+    assert all(sc.limits.get(c.name).rms_window == pytest.approx(2.0) for c in sc.actuator.channels)
