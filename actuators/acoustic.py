@@ -50,7 +50,7 @@ Residual flexibility of the truncated modes
     brings the median error of the drive-point receptance between the resonances from 14 % to
     0.3 % (200 x 200 mm plate, drive 36 mm off centre) and from 23 % to 2 % (120 x 100 mm, drive
     24 mm off centre, nearer the edges), and that of grad |w|^2 within 10 mm of the drive from 30 %
-    to 2.5 % (tests/test_acoustic.py). A base drive loads the plate uniformly, whose
+    to 2.5 % (tests/actuators/test_acoustic.py). A base drive loads the plate uniformly, whose
     high modes take part only weakly (their participation ``Gamma_m`` falls with order), so no
     residual is added there; the tests check that its response has converged at the default margin.
 
@@ -108,7 +108,6 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import tempfile
 import warnings
 from pathlib import Path
 
@@ -116,12 +115,21 @@ import numpy as np
 from scipy import special
 from scipy.constants import g as STANDARD_GRAVITY
 
-from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
+from fieldplan.contract.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError
+from fieldplan.fileio import atomic_open
 from fieldplan.units import to_si
 
-from .plate_modes import (ALGORITHM_VERSION, PlateModes, _check_material, bending_wavenumber,
-                          flexural_rigidity, parse_edges, parse_supports, plate_modes)
+from .plate_modes import (
+    ALGORITHM_VERSION,
+    PlateModes,
+    _check_material,
+    bending_wavenumber,
+    flexural_rigidity,
+    parse_edges,
+    parse_supports,
+    plate_modes,
+)
 
 __all__ = [
     "Plate",
@@ -349,21 +357,14 @@ def _cache_load(directory, stem, key):
 
 
 def _cache_save(directory, stem, key, arrays):
-    """Store arrays atomically (temporary file in the same directory, then os.replace)."""
+    """Store arrays atomically (:func:`fieldplan.fileio.atomic_open`: temporary file, then rename)."""
     if directory is None:
         return False
     try:
         directory.mkdir(parents=True, exist_ok=True)
         path = directory / f"{stem}-{_digest(key)}.npz"
-        fd, tmp = tempfile.mkstemp(prefix=f".{stem}-", suffix=".npz.tmp", dir=directory)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                np.savez(fh, key=np.array(key), **arrays)
-            os.replace(tmp, path)
-        except BaseException:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            raise
+        with atomic_open(path, "wb") as fh:
+            np.savez(fh, key=np.array(key), **arrays)
         return True
     except OSError as exc:
         warnings.warn(f"plate field cache not written to {directory} ({exc}); it will be recomputed next time.",

@@ -12,7 +12,7 @@ Physics, in the order the actuator uses it:
   of Particles, 1995; Morgan & Green, AC Electrokinetics, 2003), with the field of the electrode
   pattern from :mod:`actuators.electrostatics` at the height of the body's centre.
 * Overdamped motion: in-plane velocity = in-plane force / (Stokes drag with the exact wall factor of
-  a sphere near a plane), :func:`fieldplan.physics.drag_coefficient`.
+  a sphere near a plane), :func:`fieldplan.world.physics.drag_coefficient`.
 
 Model limits (stated, not hidden): the body stays at ``Body.height`` (the vertical DEP force,
 which can levitate a particle under negative DEP, is not integrated); the particle is small
@@ -36,13 +36,25 @@ import numpy as np
 from scipy.constants import epsilon_0
 from scipy.optimize import brentq
 
-from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
+from fieldplan.contract.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError
-from fieldplan.physics import drag_coefficient
+from fieldplan.world.physics import drag_coefficient
 
-from .electrostatics import (RESOLUTION_SPACINGS, ElectrodeLayout, FloorSolver, Grid, SplineMaps, UnitResponses,
-                             finger_array, interdigitated, layout_from_spec, pad_array, quadrupole,
-                             resolution_problems, square_field_gradient)
+from .electrostatics import (
+    RESOLUTION_SPACINGS,
+    ElectrodeLayout,
+    FloorSolver,
+    Grid,
+    SplineMaps,
+    UnitResponses,
+    finger_array,
+    interdigitated,
+    layout_from_spec,
+    pad_array,
+    quadrupole,
+    resolution_problems,
+    square_field_gradient,
+)
 
 __all__ = [
     "complex_permittivity",
@@ -338,7 +350,7 @@ class ElectrodeArray(Actuator):
     Channels: one per electrode, the signed peak amplitude in V (in phase for > 0, antiphase for
     < 0; bounds ``+-voltage_limit``), then ``frequency`` in Hz taking only the listed values. The
     velocity of a body at ``xy`` is the in-plane DEP force on it at its centre height, divided by its
-    Stokes drag with the wall factor of :func:`fieldplan.physics.wall_drag_parallel`. It is quadratic in the voltages, so the planner
+    Stokes drag with the wall factor of :func:`fieldplan.world.physics.wall_drag_parallel`. It is quadratic in the voltages, so the planner
     time-shares :meth:`primitives` (voltage patterns x frequencies). Bodies with different
     Clausius-Mossotti factors at a frequency move differently under the same voltages - opposite
     ways across a crossover.

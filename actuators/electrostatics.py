@@ -12,7 +12,7 @@ The chain, each step a plain function or small class over arrays:
    half-space single-layer operator (FFT, exact free-space convolution or periodic) by
    preconditioned conjugate gradients. Electrode edges fall inside grid cells (area fractions with
    a fitted Robin blend), so errors are second order in the spacing. Measured against the exact
-   conformal-map solution of an infinite interdigitated array (tests/test_electrostatics.py):
+   conformal-map solution of an infinite interdigitated array (tests/actuators/test_electrostatics.py):
    with 8 spacings across the narrowest strip or gap, ``|E|^2`` and ``d|E|^2/dz`` are within
    0.2-0.4 % at a height of one strip width and 0.1 % far above; with 4 spacings about 1 %
    (a ResolutionWarning from the actuator below that, :func:`resolution_problems`). Isolated
@@ -46,7 +46,6 @@ import collections
 import hashlib
 import json
 import os
-import tempfile
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -62,6 +61,7 @@ from shapely.geometry import MultiPolygon, Polygon, box
 from shapely.validation import explain_validity
 
 from fieldplan.errors import ActuatorError
+from fieldplan.fileio import atomic_open
 
 __all__ = [
     "ElectrodeLayout",
@@ -1223,7 +1223,7 @@ def normal_field_fields(normal_field, grid, z, *, _spectrum=None):
 
 
 #: Fewest grid spacings across the narrowest electrode or gap before :func:`resolution_problems`
-#: reports it. Measured against the exact periodic solution (tests/test_electrostatics.py): with 4
+#: reports it. Measured against the exact periodic solution (tests/actuators/test_electrostatics.py): with 4
 #: spacings across the narrowest feature the insulating model's |E|^2 is within about 1 % at a height
 #: of that feature's width; the error grows fast below.
 RESOLUTION_SPACINGS = 4
@@ -1437,17 +1437,8 @@ def _resolve_cache_dir(cache_dir):
 def _atomic_save(path, array):
     """Write ``array`` to ``path`` (.npy) so that readers never see a partial file."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".npy")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            np.save(fh, array, allow_pickle=False)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    with atomic_open(path, "wb") as fh:
+        np.save(fh, array, allow_pickle=False)
 
 
 def _try_load(path, shape):
@@ -1483,7 +1474,7 @@ class UnitResponses:
 
     Results are kept in memory (per process, a few entries) and, when a cache directory is set,
     on disk as ``.npy`` files named by a SHA-256 hash of the layout, the grid, the padding, the gap
-    model (with its partial-cell constants) and the height (written atomically: temporary file, then ``os.replace``).
+    model (with its partial-cell constants) and the height (written atomically: temporary file, then rename).
 
     Parameters
     ----------

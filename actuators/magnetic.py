@@ -45,9 +45,9 @@ from scipy.constants import g as _GRAVITY
 from scipy.constants import mu_0
 from scipy.special import ellipe, ellipkm1
 
-from fieldplan.actuator import Actuator, Channel, FieldBasis, Primitive
+from fieldplan.contract.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError, LimitError
-from fieldplan.physics import drag_coefficient
+from fieldplan.world.physics import drag_coefficient
 
 __all__ = [
     "loop_field",
@@ -1414,15 +1414,15 @@ class CoilArray(Actuator):
         return np.array([c.power(i) if c.resistance is not None else np.nan for c, i in zip(self.coils, u)])
 
     def rms_limits(self):
-        """Per-channel limits for :class:`fieldplan.schedule.HardwareLimits`.
+        """Per-channel limits for :class:`fieldplan.contract.schedule.HardwareLimits`.
 
         Returns
         -------
-        dict of str -> fieldplan.schedule.ChannelLimit
+        dict of str -> fieldplan.contract.schedule.ChannelLimit
             Bounds +-``current_limit``; ``rms`` = the coil's ``rms_current`` and ``rms_window`` = its
             ``thermal_time_constant`` where given.
         """
-        from fieldplan.schedule import ChannelLimit
+        from fieldplan.contract.schedule import ChannelLimit
 
         out = {}
         for ch, c in zip(self.channels, self.coils):
@@ -1431,8 +1431,12 @@ class CoilArray(Actuator):
         return out
 
     def hardware_limits(self, **kwargs):
-        """:class:`fieldplan.schedule.HardwareLimits` from :meth:`rms_limits` (``kwargs`` passed on)."""
-        from fieldplan.schedule import HardwareLimits
+        """The coils' declared limits (:meth:`rms_limits`): current bounds, RMS current over the thermal time constant.
+
+        ``kwargs`` (``time_step``, ``min_dwell``) are passed to
+        :class:`fieldplan.contract.schedule.HardwareLimits`. Scenarios start from these limits.
+        """
+        from fieldplan.contract.schedule import HardwareLimits
 
         return HardwareLimits(self.rms_limits(), **kwargs)
 
@@ -1441,7 +1445,7 @@ class CoilArray(Actuator):
 
         Parameters
         ----------
-        schedule : fieldplan.schedule.Schedule
+        schedule : fieldplan.contract.schedule.Schedule
             Its channels must be this array's channels (same names, same order).
 
         Returns

@@ -17,55 +17,65 @@ Scenarios (loaded on first use)
 Errors
     FieldplanError, UnitError, ActuatorError, WorkspaceError, LimitError, ScenarioError
 
-Modules with their own public surface
-    fieldplan.planning   Controller (the horizon planner), cost_to_go, HorizonProgram, PlanSettings
-    fieldplan.plan       plan, PlanResult, capability_curve, StepController (the earlier controller)
-    fieldplan.live       run_live, closed_loop (the same controller against a tracker and driver)
-    fieldplan.routes     occupancy graph, A* routes, goal assignment
-    fieldplan.steer      steerability, speed_map, count_curve, select_primitives, compare_designs,
-                         mirror_check, symmetry_report (plots in fieldplan.steer_plots)
-    fieldplan.tracking   read_tracks, velocity_samples (tracking CSV; TrackingDataError)
-    fieldplan.calibrate  fit_field, CalibratedActuator, load_calibrated, fit_parameters,
-                         calibrate_command (CalibrationError)
-    fieldplan.scenario   load_scenario and the scenario schema; fieldplan.cli is the command
-    fieldplan.testing    check_actuator (the contract suite), SourceArray
+Sub-packages, one per layer (each imports only from those listed before it)
+    fieldplan.world        the physical world: Medium, Body, wall physics, Workspace, Simulator
+    fieldplan.contract     actuators and hardware: Actuator, Channel, Schedule, HardwareLimits,
+                           discovery (registry), check_actuator and SourceArray (testing)
+    fieldplan.planning     the planner: Controller, cost-to-go, horizon program, routes, plan()
+                           (open loop), run_live and closed_loop (the same controller in a loop)
+    fieldplan.analysis     before any plan: steerability, speed maps, count curves, design
+                           helpers, symmetry, capability curves
+    fieldplan.calibration  tracking CSV, fitted fields, CalibratedActuator, grey-box fits
+    fieldplan.plots        every figure, in one style
+    fieldplan.scenario     the scenario file: reading, schema, validation, building, dumping
+    fieldplan.workflows    what the commands do: run_scenario, compare, write_outputs, inspect, fit
+    fieldplan.lab          the lab stack: video tracking, instruments, real-time pacing
+Modules beside them: errors, units (pint), fileio (atomic files, output folders), result (the
+result base), progress (progress bars), cli (the ``fieldplan`` command). The earlier flat module
+paths (``fieldplan.steer``, ``fieldplan.plan``, ...) still import (:mod:`fieldplan.compat`).
 """
 
-from .actuator import TAGS, Actuator, Channel, FieldBasis, Primitive, Segment
-from .body import Body, Shell
-from .errors import (ActuatorError, FieldplanError, LimitError, ScenarioError, UnitError,
-                     WorkspaceError)
-from .medium import Medium, air, water
-from .registry import available_actuators, load_actuator
-from .schedule import ChannelLimit, HardwareLimits, Schedule
-from .simulate import Rollout, Simulator, rollout
+import importlib
+import sys
+
+from . import compat
+
+from .contract.actuator import TAGS, Actuator, Channel, FieldBasis, Primitive, Segment
+from .contract.registry import available_actuators, load_actuator
+from .contract.schedule import ChannelLimit, HardwareLimits, Schedule
+from .errors import ActuatorError, FieldplanError, LimitError, ScenarioError, UnitError, WorkspaceError
 from .units import to_si
-from .workspace import Workspace, circle, polygon, rectangle
+from .world.body import Body, Shell
+from .world.medium import Medium, air, water
+from .world.simulate import Rollout, Simulator, rollout
+from .world.workspace import Workspace, circle, polygon, rectangle
 
 __version__ = "0.1.0"
 
 # The planner pulls in cvxpy/OSQP/networkx (about a second): load it on first use only.
 _LAZY = {
-    "plan": "plan", "PlanSettings": "planning", "PlanResult": "plan", "Controller": "planning",
-    "capability_curve": "plan", "run_live": "live", "closed_loop": "live", "LiveResult": "live",
-    "load_scenario": "scenario", "run_scenario": "compare", "write_outputs": "export",
+    "plan": "planning.plan", "PlanSettings": "planning", "PlanResult": "planning.plan", "Controller": "planning",
+    "capability_curve": "analysis.capability", "run_live": "planning.live", "closed_loop": "planning.live",
+    "LiveResult": "planning.live", "Result": "result", "load_scenario": "scenario",
+    "run_scenario": "workflows.compare", "write_outputs": "workflows.export",
 }
 
 
 def __getattr__(name):
     if name in _LAZY:
-        import importlib
-
         value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
         globals()[name] = value
         return value
     raise AttributeError(f"module 'fieldplan' has no attribute {name!r}")
+
+
+compat.install(sys.modules[__name__], lazy=_LAZY)
 
 __all__ = [
     "to_si", "Medium", "water", "air", "Body", "Shell", "Workspace", "rectangle", "circle", "polygon",
     "Actuator", "Channel", "Primitive", "FieldBasis", "Segment", "TAGS", "load_actuator",
     "available_actuators", "Schedule", "HardwareLimits", "ChannelLimit", "Simulator", "rollout", "Rollout",
     "plan", "PlanSettings", "PlanResult", "Controller", "capability_curve", "run_live", "closed_loop",
-    "LiveResult", "load_scenario", "run_scenario", "write_outputs",
+    "LiveResult", "Result", "load_scenario", "run_scenario", "write_outputs",
     "FieldplanError", "UnitError", "ActuatorError", "WorkspaceError", "LimitError", "ScenarioError",
 ]

@@ -16,6 +16,7 @@ import textwrap
 import time
 
 from .errors import FieldplanError, LimitError, ScenarioError
+from .fileio import check_output_folder, clean_stale_temps, output_folder
 from .units import format_quantity
 
 __all__ = ["main", "build_parser", "EXIT_OK", "EXIT_NOT_REACHED", "EXIT_BAD_INPUT", "EXIT_INTERNAL"]
@@ -107,7 +108,7 @@ def build_parser():
             """
             Plot each primitive's velocity field for every body kind, the worst-direction speed map of
             one body over the workspace (dead zones), the "how many bodies can it steer" curve, and
-            print the steerability of all bodies at their starts (fieldplan.steer).
+            print the steerability of all bodies at their starts (fieldplan.analysis).
             """,
             """
             fieldplan inspect scenarios/coils.yaml --out coils-inspect
@@ -140,7 +141,7 @@ def build_parser():
     v.add_argument("--normalised", action="store_true", help="print the normalised SI YAML of each file")
     v.add_argument("--quiet", "-q", action="store_true", help="print errors only")
 
-    f = add("fit", "fit a calibrated actuator from a tracking CSV (fieldplan.calibrate)",
+    f = add("fit", "fit a calibrated actuator from a tracking CSV (fieldplan.calibration.calibrate)",
             """
             Read tracks, differentiate them, fit one smooth velocity field per primitive, and write the
             calibrated actuator (<name>.npz + <name>.json, usable in a scenario as
@@ -150,7 +151,7 @@ def build_parser():
             fieldplan fit scenarios/calibration/tracks.csv --out calib
             fieldplan fit tracks.csv --out calib --name dish3 --primitives coil_1+,coil_2+ --units x=um,y=um
             """)
-    f.add_argument("tracks", help="tracking CSV (layout in fieldplan.tracking)")
+    f.add_argument("tracks", help="tracking CSV (layout in fieldplan.calibration.tracking)")
     f.add_argument("--out", "-o", required=True, help="output folder")
     f.add_argument("--force", action="store_true", help=_FORCE_HELP)
     f.add_argument("--skip-bad-rows", action="store_true",
@@ -260,7 +261,6 @@ def _note_variants(args, sc, command, verb):
 
 def _prepare_out(args, out, inputs):
     """Refuse an output folder that may not be written, before any work; clear stale temporary folders."""
-    from .export import check_output_folder, clean_stale_temps  # noqa: PLC0415
 
     check_output_folder(out, args.force, inputs)
     for p in clean_stale_temps(out):
@@ -283,8 +283,8 @@ def _default_out(sc, suffix):
 
 # ---------------------------------------------------------------------------------------------
 def _cmd_run(args):
-    from .compare import run_scenario  # noqa: PLC0415
-    from .export import write_outputs  # noqa: PLC0415
+    from .workflows.compare import run_scenario  # noqa: PLC0415
+    from .workflows.export import write_outputs  # noqa: PLC0415
 
     sc = _load(args.scenario, args)
     _note_variants(args, sc, "run", "plans and simulates")
@@ -328,7 +328,7 @@ def _cmd_run(args):
 
 
 def _read_schedule(path, sc):
-    from .schedule import Schedule  # noqa: PLC0415
+    from .contract.schedule import Schedule  # noqa: PLC0415
 
     if not os.path.exists(path):
         raise _UserError(f"{path}: no such schedule file.")
@@ -365,10 +365,7 @@ def _parse_seeds(text):
 
 
 def _cmd_compare(args):
-    from .compare import compare, make_executor  # noqa: PLC0415
-    from .export import json_safe, output_folder  # noqa: PLC0415
-    from .plots import save  # noqa: PLC0415
-    from .schedule import atomic_write  # noqa: PLC0415
+    from .workflows.compare import compare, make_executor, write_comparison  # noqa: PLC0415
 
     seeds = _parse_seeds(args.seeds)
     loaded, problems = _load_each(args.scenarios, args)
@@ -388,13 +385,7 @@ def _cmd_compare(args):
     with make_executor(args.scheduler, workers) as ex:
         cmp = compare(scenarios, seeds=seeds, trials=args.trials, executor=ex, progress=_show_progress(args))
     out = os.path.abspath(args.out)
-    with output_folder(out, args.force, inputs, command="compare") as tmp:
-        atomic_write(os.path.join(tmp, "comparison.md"), cmp.to_markdown() + "\n")
-        atomic_write(os.path.join(tmp, "comparison.csv"), cmp.to_csv())
-        atomic_write(os.path.join(tmp, "comparison.json"),
-                     json.dumps(json_safe({"seeds": seeds, "trials": args.trials, "rows": cmp.rows,
-                                           "runs": cmp.runs}), indent=1, allow_nan=False))
-        save(cmp.bar_chart(), os.path.join(tmp, "comparison.png"))
+    write_comparison(out, cmp, seeds=seeds, trials=args.trials, force=args.force, inputs=inputs)
     _say(args, cmp.to_markdown())
     for r in cmp.rows:
         for m in r["error_messages"][:1]:
@@ -409,141 +400,27 @@ def _cmd_compare(args):
 
 # ---------------------------------------------------------------------------------------------
 def _cmd_inspect(args):
-    import numpy as np  # noqa: PLC0415
-
-    from .export import output_folder  # noqa: PLC0415
-    from .plots import plot_primitive_fields, save  # noqa: PLC0415
-    from .schedule import atomic_write  # noqa: PLC0415
+    from .scenario import MAX_BODIES  # noqa: PLC0415
+    from .workflows.inspect import inspect_scenario  # noqa: PLC0415
 
     sc = _load(args.scenario, args)
     _note_variants(args, sc, "inspect", "inspects")
     out = os.path.abspath(args.out or _default_out(sc, "inspect"))
     inputs = _inputs([args.scenario], [sc])
     _prepare_out(args, out, inputs)
+    counts = None
     if args.counts:
         try:
             counts = [int(x) for x in args.counts.split(",") if x.strip()]
         except ValueError:
             raise _UserError(f"--counts: expected a comma list of whole numbers, got {args.counts!r}.") from None
-        from .scenario import MAX_BODIES  # noqa: PLC0415
-
         if not counts or min(counts) < 1 or max(counts) > MAX_BODIES:
             raise _UserError(f"--counts: counts must be from 1 to {MAX_BODIES}, got {args.counts!r}.")
-    else:
-        # Go past the one-step counting limit (fieldplan.steer.counting_limit) so the curve shows
-        # where it drops, within a budget of six counts.
-        from .steer import counting_limit  # noqa: PLC0415
-
-        limit = counting_limit(sc.actuator.basis(sc.bodies[:1], sc.medium, sc.starts[:1]))
-        counts = list(range(1, min(max(len(sc.bodies) + 1, int(limit) + 2), 6) + 1))
-    lines = [f"# {sc.name}: {sc.actuator.describe()}", ""]
-    report = {"scenario": sc.name, "actuator": type(sc.actuator).__name__,
-              "channels": [{"name": c.name, "unit": c.unit, "lower": c.lower, "upper": c.upper}
-                           for c in sc.actuator.channels],
-              "primitives": [p.name for p in sc.actuator.primitives()]}
-    with output_folder(out, args.force, inputs, command="inspect") as tmp:
-        kinds = list({b.name: b for b in sc.bodies}.values())
-        for b in kinds:
-            fig = plot_primitive_fields(sc.actuator, b, sc.medium, sc.workspace)
-            save(fig, os.path.join(tmp, f"fields-{_safe(b.name)}.png"))
-        try:
-            from . import steer  # noqa: PLC0415
-        except ImportError:
-            steer = None
-            lines.append("steerability analysis not available (fieldplan.steer missing).")
-        if steer is not None:
-            basis = sc.actuator.basis(sc.bodies, sc.medium, sc.starts)
-            st = steer.steerability(basis)
-            lines += ["## All bodies at their starts", "", st.summary(), ""]
-            report["at_start"] = {"steerable": st.steerable, "speed": st.speed, "rank": st.rank,
-                                  "condition": st.condition, "method": st.method}
-            for b in kinds:
-                bf = steer.basis_function(sc.actuator, b, sc.medium)
-                sm = steer.speed_map(bf, sc.workspace, shape=(args.grid, args.grid))
-                save(_speed_map_figure(sm, sc, b), os.path.join(tmp, f"speed-map-{_safe(b.name)}.png"))
-                lines.append(f"## {b.name}: one body over the workspace")
-                lines.append(f"mean worst-direction speed {format_quantity(sm.mean_speed, 'm/s')}; dead (some direction "
-                             f"unavailable) on {100 * sm.dead_fraction:.1f} % of the free space")
-                report.setdefault("speed_maps", {})[b.name] = {"mean_speed": sm.mean_speed,
-                                                               "dead_fraction": sm.dead_fraction}
-                if args.trials:
-                    cc = steer.count_curve(bf, sc.workspace, counts, trials=args.trials, rng=sc.simulation.seed,
-                                           progress=_show_progress(args))
-                    save(_count_figure(cc, b), os.path.join(tmp, f"count-curve-{_safe(b.name)}.png"))
-                    lines.append("bodies steerable now, fraction of random configurations: " + ", ".join(
-                        f"N={n}: {fr:.2f}" for n, fr in zip(cc.counts, cc.fraction))
-                        + f" (counting limit {steer.counting_rule(cc.mode)} = {cc.counting_limit:g})")
-                    report.setdefault("count_curves", {})[b.name] = {
-                        "counts": np.asarray(cc.counts).tolist(), "fraction": np.asarray(cc.fraction).tolist()}
-                lines.append("")
-        atomic_write(os.path.join(tmp, "inspect.md"), "\n".join(lines) + "\n")
-        from .export import json_safe  # noqa: PLC0415
-
-        atomic_write(os.path.join(tmp, "inspect.json"), json.dumps(json_safe(report), indent=1, allow_nan=False))
+    lines, _ = inspect_scenario(sc, out, force=args.force, inputs=inputs, counts=counts, grid=args.grid,
+                                trials=args.trials, progress=_show_progress(args))
     _say(args, *lines)
     _say(args, f"outputs in {out}:", *(f"  {n}" for n in sorted(os.listdir(out)) if not n.startswith(".")))
     return EXIT_OK
-
-
-def _safe(name):
-    return "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in name)
-
-
-def _speed_map_figure(sm, sc, body):
-    import numpy as np  # noqa: PLC0415
-
-    from .plots import _draw_workspace, _figure, _speed_unit, axis_label, draw_outlines, length_unit  # noqa: PLC0415
-
-    xmin, ymin, xmax, ymax = sc.workspace.bounds
-    f, unit = length_unit(max(xmax - xmin, ymax - ymin))
-    vmax = float(np.nanmax(sm.speed)) if np.any(np.isfinite(sm.speed)) else 1.0
-    sf, su = _speed_unit(vmax or 1.0)
-    fig = _figure(figsize=(6.5, 5.2), layout="constrained")
-    ax = fig.add_subplot()
-    mesh = ax.pcolormesh(sm.xs * f, sm.ys * f, sm.speed * sf, shading="auto", cmap="magma")
-    fig.colorbar(mesh, ax=ax, label=axis_label("worst-direction speed", su))
-    if sm.dead.any():
-        ys, xs = np.nonzero(sm.dead)
-        ax.scatter(sm.xs[xs] * f, sm.ys[ys] * f, marker="s", s=6, c="c", label="dead (a direction unavailable)")
-        ax.legend(loc="upper right", fontsize=7)
-    draw_outlines(ax, sc.actuator, f)
-    _draw_workspace(ax, sc.workspace, f)
-    ax.set_aspect("equal")
-    ax.set_xlabel(axis_label("x", unit))
-    ax.set_ylabel(axis_label("y", unit))
-    ax.set_title(f"{body.name}: worst-direction speed of one body")
-    return fig
-
-
-def _count_figure(cc, body):
-    import numpy as np  # noqa: PLC0415
-
-    from .plots import _figure, axis_label  # noqa: PLC0415
-
-    fig = _figure(figsize=(6.0, 4.0), layout="constrained")
-    ax = fig.add_subplot()
-    c = np.asarray(cc.counts)
-    ax.errorbar(c, cc.fraction, yerr=[np.asarray(cc.fraction) - cc.low, cc.high - np.asarray(cc.fraction)],
-                marker="o", capsize=3,
-                label=f"{body.name} ({cc.trials} random configurations each; bars: 95 % Wilson interval)")
-    from .steer import counting_rule  # noqa: PLC0415
-
-    label = f"counting limit {counting_rule(cc.mode)} = {cc.counting_limit:g}"
-    if cc.counting_limit <= c.max() + 1:
-        ax.axvline(cc.counting_limit, color="k", ls="--", lw=0.8, label=label)
-    else:
-        # Far beyond the counts tried: name it rather than squash the curve against one edge.
-        ax.plot([], [], color="k", ls="--", lw=0.8, label=label + " (beyond the counts tried)")
-    ax.set_xlabel(axis_label("number of bodies N", "1"))
-    from matplotlib.ticker import MaxNLocator  # noqa: PLC0415
-
-    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-    ax.set_ylabel(axis_label("fraction steerable now", "1"))
-    ax.set_ylim(-0.05, 1.05)
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=8)
-    ax.set_title("how many bodies can this actuator steer at once")
-    return fig
 
 
 def _load_each(paths, args, check_only=False):
@@ -586,10 +463,9 @@ def _cmd_validate(args):
 
 def _cmd_fit(args):
     try:
-        from .calibrate import calibrate_command  # noqa: PLC0415
+        from .calibration.calibrate import calibrate_command  # noqa: PLC0415
     except ImportError as exc:
         raise _UserError(f"calibration is not available ({exc}).") from None
-    from .export import output_folder  # noqa: PLC0415
 
     if not os.path.exists(args.tracks):
         raise _UserError(f"{args.tracks}: no such tracking file.")
@@ -643,7 +519,7 @@ def _previous_note(path):
 
 
 def _cmd_schema(args):
-    from .registry import available_actuators, load_actuator_class  # noqa: PLC0415
+    from .contract.registry import available_actuators, load_actuator_class  # noqa: PLC0415
     from .scenario import actuator_params, schema_reference  # noqa: PLC0415
 
     if not args.actuators_only:
@@ -688,11 +564,11 @@ def _numpydoc_params(doc):
 
 def _with_planner_defaults(reference):
     """The scenario reference with the ``planner`` section's ``*`` row replaced by every
-    ``fieldplan.plan.PlanSettings`` field: its type, unit, default and meaning (from its docstring)."""
+    ``fieldplan.planning.plan.PlanSettings`` field: its type, unit, default and meaning (from its docstring)."""
     try:
-        from .scenario import PLANNER_UNITS, _planner_fields  # noqa: PLC0415
+        from .scenario import PLANNER_UNITS, planner_fields  # noqa: PLC0415
 
-        defaults, cls = _planner_fields()
+        defaults, cls = planner_fields()
     except Exception:  # noqa: BLE001 - the reference must print even when the planner does not import
         return reference
     docs = _numpydoc_params(getattr(cls, "__doc__", ""))

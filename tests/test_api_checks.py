@@ -1,13 +1,13 @@
 """The API checks its arguments like the CLI does (issue 16 item 15): non-numeric positions and a
 string passed as a body give a clear error naming the argument, never a raw numpy ValueError or an
-AttributeError. fieldplan.body.check_positions / check_bodies are the shared validators."""
+AttributeError. fieldplan.world.body.check_positions / check_bodies are the shared validators."""
 
 import numpy as np
 import pytest
 
 from fieldplan import Body, Workspace
-from fieldplan.body import check_bodies, check_positions
 from fieldplan.errors import FieldplanError, WorkspaceError
+from fieldplan.world.body import check_bodies, check_positions
 
 BEAD = Body("bead", 5e-6, 1050.0)
 

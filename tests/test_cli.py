@@ -12,7 +12,7 @@ import pytest
 
 from fieldplan import Schedule
 from fieldplan.cli import build_parser, main
-from fieldplan.export import read_trajectories
+from fieldplan.workflows.export import read_trajectories
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 
@@ -200,7 +200,7 @@ def test_existing_folder_is_refused_without_force(base_run, capsys):
 
 def test_replay_a_schedule_and_force(base_run, tmp_path, capsys):
     """--schedule plays a saved schedule on the truth model; --force replaces a folder fieldplan wrote whole."""
-    from fieldplan.export import MARKER
+    from fieldplan.workflows.export import MARKER
 
     _, out, scen, _ = base_run
     target = tmp_path / "replay"
@@ -298,8 +298,8 @@ def test_inspect_writes_fields_and_steerability(tmp_path, capsys):
 
 def test_compare_on_local_processes_and_on_dask(tmp_path):
     """Sweeps run through concurrent.futures: a local process pool, or a dask.distributed scheduler."""
-    from fieldplan.compare import compare, make_executor
     from fieldplan.scenario import load_scenario
+    from fieldplan.workflows.compare import compare, make_executor
 
     sc = load_scenario(GOOD, name="x")
     with make_executor(None, 2) as ex:
@@ -318,7 +318,7 @@ def test_compare_on_local_processes_and_on_dask(tmp_path):
 def test_unreachable_scheduler_is_a_clear_error():
     pytest.importorskip("dask.distributed")
     from fieldplan import FieldplanError
-    from fieldplan.compare import make_executor
+    from fieldplan.workflows.compare import make_executor
 
     with pytest.raises(FieldplanError, match="scheduler at 'tcp://127.0.0.1:9'"):
         with make_executor("tcp://127.0.0.1:9", timeout=1.0):

@@ -18,11 +18,14 @@ import numpy as np
 import pytest
 import shapely
 
-import fieldplan.scenario as scenario_mod
+import fieldplan.scenario.yamldoc as scenario_mod   # the resource limits live with the reader
 from fieldplan import Schedule, Segment
+from fieldplan.calibration.tracking import TrackingDataError, read_tracks
 from fieldplan.cli import main
+from fieldplan.contract.schedule import atomic_write
 from fieldplan.errors import ScenarioError
-from fieldplan.export import (
+from fieldplan.scenario import load_scenario, read_yaml
+from fieldplan.workflows.export import (
     MARKER,
     OutputExistsError,
     OutputFolderError,
@@ -31,9 +34,6 @@ from fieldplan.export import (
     output_folder,
     written_by_fieldplan,
 )
-from fieldplan.scenario import load_scenario, read_yaml
-from fieldplan.schedule import atomic_write
-from fieldplan.tracking import TrackingDataError, read_tracks
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 
@@ -58,7 +58,7 @@ def problems_of(text, **kw):
 
 def no_planning(monkeypatch):
     """Make any planning or simulation fail loudly: refusals must come before them."""
-    import fieldplan.compare as compare
+    import fieldplan.workflows.compare as compare
 
     def boom(*a, **k):
         raise AssertionError("planning started before the output folder was checked")
@@ -168,7 +168,7 @@ def _replay_args(tmp_path):
 
 
 def test_sigterm_while_writing_removes_the_temporary_folder(tmp_path, monkeypatch, capsys):
-    import fieldplan.export as export
+    import fieldplan.workflows.export as export
 
     def killed(*a, **k):
         os.kill(os.getpid(), signal.SIGTERM)
@@ -186,7 +186,7 @@ def test_sigterm_while_writing_removes_the_temporary_folder(tmp_path, monkeypatc
 
 SLOW_WRITER = textwrap.dedent("""\
     import pathlib, sys, time
-    import fieldplan.export as export
+    import fieldplan.workflows.export as export
     from fieldplan.cli import main
 
     def slow(path, run):          # stands for a long write (an animation, a slow disk)
@@ -233,7 +233,7 @@ def test_a_real_process_killed_while_writing(tmp_path, sig, capsys):
 
 
 def test_sigint_still_exits_130(tmp_path, monkeypatch, capsys):
-    import fieldplan.export as export
+    import fieldplan.workflows.export as export
 
     def interrupted(*a, **k):
         raise KeyboardInterrupt
@@ -483,8 +483,8 @@ def test_obstacle_errors_still_name_their_index_and_warnings_are_capped():
 
 
 def test_long_obstacle_lists_show_progress(monkeypatch, capsys):
-    monkeypatch.setattr(scenario_mod, "_PROGRESS_OBSTACLES", 5)
-    monkeypatch.setattr(scenario_mod, "_PROGRESS_VALUES", 50)
+    monkeypatch.setattr(scenario_mod, "PROGRESS_OBSTACLES", 5)
+    monkeypatch.setattr(scenario_mod, "PROGRESS_VALUES", 50)
     obs = [f"{{rectangle: [{0.1 + 0.05 * i} mm, 0.45 mm, {0.12 + 0.05 * i} mm, 0.5 mm]}}" for i in range(10)]
     load_scenario(obstacle_scenario(obs), name="p", progress=True)
     err = capsys.readouterr().err
@@ -572,7 +572,7 @@ def test_devices_are_not_read_as_input(tmp_path, capsys):
 
 
 def test_internal_error_text_of_fit_does_not_mention_a_scenario(tmp_path, monkeypatch, capsys):
-    import fieldplan.calibrate as calibrate
+    import fieldplan.calibration.calibrate as calibrate
 
     def bug(*a, **k):
         raise RuntimeError("simulated bug")

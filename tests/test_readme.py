@@ -18,7 +18,9 @@ def test_readme_example_runs(index, tmp_path):
     (tmp_path / "scenarios").symlink_to(README.parent / "scenarios")
     script = tmp_path / f"example_{index + 1}.py"
     script.write_text(BLOCKS[index])
-    env = dict(os.environ, MPLBACKEND="Agg")
+    # PYTHONPATH: run this checkout's fieldplan, whatever else is installed.
+    env = dict(os.environ, MPLBACKEND="Agg",
+               PYTHONPATH=os.pathsep.join([str(README.parent), *filter(None, [os.environ.get("PYTHONPATH")])]))
     proc = subprocess.run([sys.executable, str(script)], cwd=tmp_path, env=env,
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, f"README example {index + 1} failed:\n{proc.stderr[-3000:]}"

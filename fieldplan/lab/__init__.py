@@ -8,7 +8,7 @@
 :mod:`~fieldplan.lab.video`            frames (TIFF stacks, video files) -> trackpy features and tracks
                                        -> the tracking CSV ``fieldplan fit`` reads (:func:`track_video`)
 :mod:`~fieldplan.lab.observe`          :func:`camera_observer`: an ``observe()`` for
-                                       :func:`fieldplan.live.run_live` with predictive linking
+                                       :func:`fieldplan.planning.live.run_live` with predictive linking
 :mod:`~fieldplan.lab.drivers`          ``apply(segment)`` adapters: PyVISA tone generator, serial line,
                                        analog-output waveforms (NI-DAQmx behind the ``daq`` extra)
 :mod:`~fieldplan.lab.pacing`           wall-clock real-time play: latency, jitter, overrun warnings,

@@ -154,7 +154,7 @@ def cmd_track(args):
         _say(args, f"  {stubs} track(s) shorter than {args.min_length} frames dropped")
     _say(args, f"tracking CSV: {args.out}")
     if args.fit:
-        from ..calibrate import calibrate_command  # noqa: PLC0415
+        from ..workflows.fit import calibrate_command  # noqa: PLC0415
 
         if os.path.exists(args.fit) and not args.force:
             raise _UserError(f"output folder {args.fit!r} already exists; pass --force to write into it.")
@@ -216,7 +216,7 @@ def cmd_play(args):
     on_segment = None
     sim = None
     if args.dry_run and sc is not None:
-        from ..simulate import Simulator  # noqa: PLC0415
+        from ..world.simulate import Simulator  # noqa: PLC0415
 
         sim = Simulator(sc.truth or sc.actuator, sc.bodies, sc.workspace, sc.starts, rng=sc.simulation.seed)
 

@@ -1,7 +1,7 @@
 """``apply(segment)`` adapters for instruments: a PyVISA tone generator, a serial line, analog-output waveforms.
 
 Every driver is a context manager and a callable ``driver(segment)`` for
-:func:`fieldplan.live.run_live` or :func:`fieldplan.lab.play.play`. Before sending a segment it
+:func:`fieldplan.planning.live.run_live` or :func:`fieldplan.lab.play.play`. Before sending a segment it
 checks it again against the declared :class:`~fieldplan.HardwareLimits` (channel bounds, slew from
 the previous segment sent, minimum dwell, time step, RMS over the declared window;
 :class:`LimitGuard`) and refuses it with :class:`~fieldplan.errors.LimitError`, sending nothing. On
@@ -37,12 +37,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..actuator import Segment
-from ..errors import FieldplanError, LimitError
-from ..schedule import HardwareLimits, Schedule
 # The tracking reader's own naming of unnamed settings (imported here, not on the first segment:
 # importing scipy.signal mid-play would delay that segment by seconds).
-from ..tracking import _setting_name
+from ..calibration.tracking import setting_name
+from ..contract.actuator import Segment
+from ..contract.schedule import HardwareLimits, Schedule
+from ..errors import FieldplanError, LimitError
 from . import require
 from .inputlog import write_log
 
@@ -441,7 +441,7 @@ def _setting_label(channels, segment):
     lab = segment.label
     if lab and lab not in ("mix",):
         return lab
-    return _setting_name([(c.name, c.unit) for c in channels], segment.values)
+    return setting_name([(c.name, c.unit) for c in channels], segment.values)
 
 
 class Driver(abc.ABC):

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import FieldplanError
-from ..schedule import atomic_write
+from ..fileio import atomic_write
 
 __all__ = ["InputLog", "InputLogError", "read_input_log", "LOG_NOTE_COLUMNS"]
 
@@ -47,7 +47,7 @@ class InputLog:
         s, increasing.
     primitive : list of str or None
         Name per row; ``None`` when the log had no primitive column (names are then derived from
-        the values by :mod:`fieldplan.tracking`).
+        the values by :mod:`fieldplan.calibration.tracking`).
     values : ndarray, shape (J, m)
         Channel values per row, SI.
     channels : tuple of (name, unit)
@@ -85,7 +85,7 @@ def read_input_log(path):
     InputLogError
         Missing columns or units, unreadable numbers, time not increasing (file and line named).
     """
-    from ..tracking import _channel_si, _parse_header, _unit_factor  # noqa: PLC0415 - one header syntax
+    from ..calibration.tracking import channel_unit_si, column_unit_factor, parse_column_header  # noqa: PLC0415 - one header syntax
 
     path = os.fspath(path)
     if not os.path.exists(path):
@@ -99,7 +99,7 @@ def read_input_log(path):
                             "'time [s],primitive,coil_1 [A]'.")
     hline, head = rows[0]
     try:
-        header = _parse_header(head, path, hline)
+        header = parse_column_header(head, path, hline)
     except FieldplanError as exc:
         raise InputLogError(str(exc)) from None
     names = [n for n, _ in header]
@@ -118,15 +118,15 @@ def read_input_log(path):
         if u is None:
             raise InputLogError(f"{path}:{hline}: column {n!r} is read as a channel but has no unit; write "
                                 f"'{n} [A]' (or '[1]' if dimensionless).")
-        si, f = _channel_si(u, n, path)
+        si, f = channel_unit_si(u, n, path)
         chans.append((n, si))
         factors.append(f)
     if prim_col is None and not chans:
         raise InputLogError(f"{path}:{hline}: the log must name the primitive or give channel values.")
     if not unit[tcol]:
         raise InputLogError(f"{path}:{hline}: column {tcol!r} needs a unit, e.g. '{tcol} [s]'.")
-    tf = _unit_factor(tcol, unit[tcol], "s", path)
-    df = _unit_factor("duration", unit["duration"], "s", path) if schedule_form else 1.0
+    tf = column_unit_factor(tcol, unit[tcol], "s", path)
+    df = column_unit_factor("duration", unit["duration"], "s", path) if schedule_form else 1.0
     col = {n: j for j, n in enumerate(names)}
     times, prims, vals, lines, durs = [], [], [], [], []
     for ln, r in rows[1:]:

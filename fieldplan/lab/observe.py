@@ -1,4 +1,4 @@
-"""Live observation from a camera: an ``observe()`` for :func:`fieldplan.live.run_live`.
+"""Live observation from a camera: an ``observe()`` for :func:`fieldplan.planning.live.run_live`.
 
 :class:`CameraObserver` takes frames from any callable or iterator (camera SDKs differ: a
 ``grab()`` method, a generator, a queue's ``get``), locates bodies in each frame with
@@ -33,7 +33,7 @@ __all__ = ["CameraObserver", "camera_observer"]
 
 
 class CameraObserver:
-    """``observe()`` for :func:`fieldplan.live.run_live` from camera frames (see the module docstring).
+    """``observe()`` for :func:`fieldplan.planning.live.run_live` from camera frames (see the module docstring).
 
     Parameters
     ----------

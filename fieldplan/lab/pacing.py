@@ -5,7 +5,7 @@ speed`` on the monotonic clock (``time.perf_counter``). :meth:`RealTimeClock.wai
 segment is due and :meth:`RealTimeClock.sent` records how late its command went out (the
 *latency*, s) and warns (:class:`OverrunWarning`) when that exceeds the tolerance.
 
-:func:`run_realtime` runs :func:`fieldplan.live.run_live` in wall-clock time: each period starts
+:func:`run_realtime` runs :func:`fieldplan.planning.live.run_live` in wall-clock time: each period starts
 with ``observe()``; the period's segments are then held for their durations on the wall clock.
 Between the frame and the first segment going out the hardware still holds the previous segment:
 that *loop latency* (observe + controller step + send) is measured every period, as is the wall
@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import FieldplanError
-from ..live import LiveResult, run_live
+from ..planning.live import LiveResult, run_live
 
 __all__ = ["OverrunWarning", "RealTimeClock", "PacedLiveResult", "run_realtime", "dry_run"]
 
@@ -98,7 +98,7 @@ class RealTimeClock:
 
 @dataclass
 class PacedLiveResult(LiveResult):
-    """:class:`fieldplan.live.LiveResult` of a wall-clock run, with its timing.
+    """:class:`fieldplan.planning.live.LiveResult` of a wall-clock run, with its timing.
 
     Attributes
     ----------
@@ -135,12 +135,12 @@ class PacedLiveResult(LiveResult):
 
 def run_realtime(controller, observe, apply, *, speed=1.0, tolerance=None, now=time.perf_counter, sleep=time.sleep,
                  **run_live_options):
-    """:func:`fieldplan.live.run_live` in wall-clock time, with its latency, jitter and overruns measured.
+    """:func:`fieldplan.planning.live.run_live` in wall-clock time, with its latency, jitter and overruns measured.
 
     Parameters
     ----------
     controller, observe, apply
-        As for :func:`fieldplan.live.run_live`; ``apply`` sends and returns (a
+        As for :func:`fieldplan.planning.live.run_live`; ``apply`` sends and returns (a
         :mod:`fieldplan.lab.drivers` driver, or the simulator); this function holds each segment
         for its duration.
     speed : float
@@ -214,7 +214,7 @@ def dry_run(controller, truth, starts, *, speed=1.0, rng=None, brownian=True, tr
     speed : float
         1 = real speed.
     rng, brownian, tracking_noise
-        See :class:`fieldplan.simulate.Simulator`.
+        See :class:`fieldplan.world.simulate.Simulator`.
     **options
         Passed to :func:`run_realtime`.
 
@@ -222,7 +222,7 @@ def dry_run(controller, truth, starts, *, speed=1.0, rng=None, brownian=True, tr
     -------
     PacedLiveResult
     """
-    from ..simulate import Simulator  # noqa: PLC0415
+    from ..world.simulate import Simulator  # noqa: PLC0415
 
     sim = Simulator(truth, controller.bodies, controller.workspace, starts, rng=rng, brownian=brownian,
                     tracking_noise=tracking_noise)

@@ -194,7 +194,7 @@ def read_marks(path):
     pixels, workspace : ndarray, shape (k, 2)
         px and m.
     """
-    from ..tracking import _parse_header, _unit_factor  # noqa: PLC0415 - one header syntax for every CSV
+    from ..calibration.tracking import column_unit_factor, parse_column_header  # noqa: PLC0415 - one header syntax for every CSV
 
     path = os.fspath(path)
     if not os.path.exists(path):
@@ -204,13 +204,13 @@ def read_marks(path):
     if len(rows) < 2:
         raise PixelMapError(f"{path}: expected a header 'x_px,y_px,x [um],y [um]' and one row per mark.")
     hline, head = rows[0]
-    header = _parse_header(head, path, hline)
+    header = parse_column_header(head, path, hline)
     names = [n for n, _ in header]
     need = ["x_px", "y_px", "x", "y"]
     if sorted(names) != sorted(need):
         raise PixelMapError(f"{path}:{hline}: mark columns must be {need} (x and y with a length unit), got {names}.")
     units = dict(header)
-    f = {n: _unit_factor(n, units[n], "m", path) for n in ("x", "y") if units[n]}
+    f = {n: column_unit_factor(n, units[n], "m", path) for n in ("x", "y") if units[n]}
     if len(f) < 2:
         raise PixelMapError(f"{path}:{hline}: columns x and y need a length unit, e.g. 'x [um]'.")
     col = {n: j for j, n in enumerate(names)}

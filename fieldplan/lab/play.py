@@ -16,8 +16,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..contract.schedule import HardwareLimits, Schedule
 from ..errors import FieldplanError
-from ..schedule import HardwareLimits, Schedule
 from .pacing import RealTimeClock
 
 __all__ = ["PlayReport", "play", "load_for_play", "limits_text"]

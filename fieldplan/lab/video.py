@@ -7,11 +7,11 @@ integrated brightness, separation), links them into tracks (``trackpy.link``, or
 crossings), maps pixel positions to the workspace (:class:`~fieldplan.lab.pixels.PixelMap`),
 joins the input log (:mod:`fieldplan.lab.inputlog`) so each frame names the input that was on,
 and returns (and writes) the tracking CSV that ``fieldplan fit`` reads
-(:func:`fieldplan.tracking.write_tracks`). :func:`tracks_from_table` does the same from a trackpy
+(:func:`fieldplan.calibration.tracking.write_tracks`). :func:`tracks_from_table` does the same from a trackpy
 results table (CSV or HDF5) a lab already has.
 
 Every frame in which a linked body was not found is written as a row without position, so the
-tracking reader reports it (``missing``); the reader's cleaning (:mod:`fieldplan.tracking`) also
+tracking reader reports it (``missing``); the reader's cleaning (:mod:`fieldplan.calibration.tracking`) also
 reports gaps, identity swaps (``jump``: a step the neighbouring steps do not explain) and
 outliers. :attr:`VideoTracks.report` gathers those per track, with the frames each track was
 seen in and whether it was lost before the end of the video.
@@ -31,8 +31,15 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..calibration.tracking import (
+    TrackingData,
+    TrackIssue,
+    clean_tracks,
+    read_primitive_values,
+    setting_name,
+    write_tracks,
+)
 from ..errors import FieldplanError
-from ..tracking import TrackingData, TrackIssue, _clean, _primitive_values, _setting_name, write_tracks
 from ..units import to_si
 from . import require
 from .inputlog import InputLog, read_input_log
@@ -349,7 +356,7 @@ class VideoTracks:
     Attributes
     ----------
     data : TrackingData
-        Cleaned by :mod:`fieldplan.tracking` (segments, issues), as ``fieldplan fit`` will see it.
+        Cleaned by :mod:`fieldplan.calibration.tracking` (segments, issues), as ``fieldplan fit`` will see it.
     raw : TrackingData
         Every frame of every kept track, lost frames as NaN rows (what :attr:`path` holds).
     features : DataFrame or None
@@ -425,7 +432,7 @@ def tracks_from_features(features, pixel_map, *, fps=None, times=None, settings=
     comment : str, optional
         ``#`` lines at the top of the CSV.
     warn : bool
-        One :class:`fieldplan.tracking.TrackingWarning` summarising the issues.
+        One :class:`fieldplan.calibration.tracking.TrackingWarning` summarising the issues.
 
     Returns
     -------
@@ -491,15 +498,15 @@ def tracks_from_features(features, pixel_map, *, fps=None, times=None, settings=
     if log.primitive is not None:
         prim = np.array([log.primitive[k] for k in j], dtype=object).astype(str)
     else:
-        prim = np.array([_setting_name(log.channels, v) for v in values], dtype=object).astype(str)
-    prim_values = _primitive_values(prim, values, log.channels,
+        prim = np.array([setting_name(log.channels, v) for v in values], dtype=object).astype(str)
+    prim_values = read_primitive_values(prim, values, log.channels,
                                     log.lines[j] if log.lines is not None else np.zeros(len(j), int), log.source)
     kinds = np.full(len(t), kind, dtype=object)
     raw = TrackingData(track, t, pos, prim, kinds, np.zeros(len(t), dtype=int), np.zeros(len(t), dtype=int),
                        tuple(log.channels), prim_values, [], None)
     with warnings.catch_warnings(record=True) as rec:
         warnings.simplefilter("always")
-        data = _clean(track, t, pos, prim, kinds, np.zeros(len(t), dtype=int), tuple(log.channels), prim_values,
+        data = clean_tracks(track, t, pos, prim, kinds, np.zeros(len(t), dtype=int), tuple(log.channels), prim_values,
                       out, warn=True)
     data.issues = list(data.issues) + issues
     for i in data.issues:

@@ -28,7 +28,7 @@ def make_controller(actuator, bodies, workspace, goals, *, limits=None, settings
     if isinstance(settings, dict):
         settings = PlanSettings.from_dict(settings)
     if settings is not None and settings.method == "step":
-        from ..plan import StepController  # noqa: PLC0415 - plan imports this package
+        from .plan import StepController  # noqa: PLC0415 - plan imports this package
 
         return StepController(actuator, bodies, workspace, goals, limits=limits, settings=settings)
     return Controller(actuator, bodies, workspace, goals, limits=limits, settings=settings)

@@ -15,8 +15,9 @@ import dataclasses
 
 import numpy as np
 
-from ..actuator import FieldBasis, Segment, _group_bodies
-from ..control import variation_length
+from ..contract.actuator import FieldBasis, Segment
+from ..world.body import group_bodies as _group_bodies
+from .step import variation_length
 from ..errors import WorkspaceError
 from .settings import PlanSettings, check_goals
 

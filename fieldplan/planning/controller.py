@@ -46,7 +46,7 @@ import numpy as np
 
 from ..errors import WorkspaceError
 from ..units import format_quantity
-from ..routes import default_resolution, occupancy_graph, route_length
+from .routes import default_resolution, occupancy_graph, route_length
 from .base import ControllerBase
 from .costtogo import cost_to_go, speed_table
 from .fieldtable import FieldTable

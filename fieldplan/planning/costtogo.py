@@ -37,7 +37,7 @@ from scipy.ndimage import distance_transform_edt
 from scipy.sparse.csgraph import dijkstra
 
 from ..errors import WorkspaceError
-from ..routes import _DIRECTIONS, available_speed, default_resolution, occupancy_graph, smooth_route
+from .routes import GRID_DIRECTIONS as _DIRECTIONS, available_speed, default_resolution, occupancy_graph, smooth_route
 
 __all__ = ["CostToGo", "cost_to_go", "speed_table"]
 

@@ -43,7 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from ..control import _pattern      # one pattern builder for both programs (fixed sparsity, CSC order)
+from .step import csc_pattern as _pattern      # one pattern builder for both programs (fixed sparsity, CSC order)
 from ..errors import FieldplanError
 
 __all__ = ["HorizonProgram", "HorizonData", "HorizonSolution"]

@@ -12,9 +12,9 @@ import time
 import numpy as np
 
 import fieldplan
-from actuators.acoustic import Plate
-from actuators.plate_modes import plate_modes
-from fieldplan.actuator import Actuator
+from fieldplan.actuators.acoustic import Plate
+from fieldplan.actuators.plate_modes import plate_modes
+from fieldplan.contract.actuator import Actuator
 from _timing import median_time
 
 AL = dict(youngs_modulus=69e9, poisson_ratio=0.33, density=2700.0)

@@ -6,7 +6,7 @@ Run: .venv/bin/pytest -q -s tests/benchmarks/test_bench_control.py -o addopts=""
    basis fields, H in {1, 5} periods, on data of the shape the controller builds (separation slots,
    keep-out rows, trust region, progress variable), re-solved over a drifting sequence of periods
    (as in closed loop):
-   - "planner": :class:`fieldplan.control.StepProgram` with the direct OSQP back end (data update,
+   - "planner": :class:`fieldplan.planning.step.StepProgram` with the direct OSQP back end (data update,
      solve, read-out), and the solver's own time inside it (OSQP's update + solve + polish);
    - "cvxpy DPP": the same program as a cvxpy Parameter problem, built once, re-solved warm;
    - "baseline": a fresh cvxpy problem built and solved every period, what one writes by hand.
@@ -25,9 +25,9 @@ import numpy as np
 import pytest
 
 from fieldplan import Body, Workspace
-from fieldplan.control import StepData, StepProgram, pair_slots
-from fieldplan.plan import Controller, capability_curve
-from fieldplan.testing import SourceArray
+from fieldplan.planning.step import StepData, StepProgram, pair_slots
+from fieldplan.planning.plan import Controller, capability_curve
+from fieldplan.contract.testing import SourceArray
 
 FULL = os.environ.get("FIELDPLAN_FULL") == "1"
 NS = (2, 5, 10, 20, 40)

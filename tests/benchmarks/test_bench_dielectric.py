@@ -20,10 +20,10 @@ import numpy as np
 import scipy.sparse.linalg as spla
 
 from fieldplan import Actuator, Body, Shell, water
-from actuators import electrostatics as es
-from actuators.dielectric import ElectrodeArray, clausius_mossotti, dep_force
-from actuators.electrostatics import FloorSolver, Grid, SplineMaps, UnitResponses, pad_array
-from fieldplan.physics import drag_coefficient
+from fieldplan.actuators import electrostatics as es
+from fieldplan.actuators.dielectric import ElectrodeArray, clausius_mossotti, dep_force
+from fieldplan.actuators.electrostatics import FloorSolver, Grid, SplineMaps, UnitResponses, pad_array
+from fieldplan.world.physics import drag_coefficient
 from _timing import timed as _median_time
 
 

@@ -9,7 +9,7 @@ import time
 
 import numpy as np
 
-from actuators.magnetic import Coil, CoilArray
+from fieldplan.actuators.magnetic import Coil, CoilArray
 from fieldplan import Body, water
 from _timing import median_time
 

@@ -1,4 +1,4 @@
-"""Benchmark of fieldplan.steer against naive baselines measured in the same run.
+"""Benchmark of fieldplan.analysis against naive baselines measured in the same run.
 
 Run: .venv/bin/pytest -q -s tests/benchmarks/test_bench_steer.py -o addopts=""
 
@@ -17,7 +17,7 @@ import numpy as np
 from scipy.optimize import linprog
 
 from fieldplan import Channel, FieldBasis, Primitive
-from fieldplan.steer import body_speeds, restrict, steerability
+from fieldplan.analysis import body_speeds, restrict, steerability
 from _timing import timed
 
 
