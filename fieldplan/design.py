@@ -65,6 +65,8 @@ STATISTICS = ("mean", "median", "p10", "min")
 # A range wider than this many orders of magnitude of its larger end (or spanning more than 1e6 of
 # the start's scale) is almost certainly a unit slip ("90 m" for "90 mm"); refused.
 _MAX_RANGE_DECADES = 6.0
+# A length range wider than this many workspace spans is refused for the same reason.
+_MAX_LENGTH_SPANS = 1e3
 # Loss of an infeasible candidate: above any feasible loss (feasible scores are >= 0), plus the
 # relative violation so the search is still pulled towards the feasible region.
 _PENALTY = 1e3
@@ -226,6 +228,8 @@ class DesignSpec:
     final_check: dict = field(default_factory=lambda: {"counts": None, "trials": 3})
     source: str = "<design>"
     allow_modules: tuple = ()
+    #: The file's own ``limits`` section (``all_channels`` applies to however many channels a candidate has).
+    limits: object = None
 
 
 class _Problems:
@@ -317,7 +321,7 @@ def parse_design(doc, scenario, *, allow_modules=()):
             close = difflib.get_close_matches(str(k), sorted(_KEYS), n=1, cutoff=0.6)
             probs.err(base + (k,), f"unknown key {k!r}." + (f" Did you mean {close[0]!r}?" if close else
                                                             f" Allowed keys: {', '.join(sorted(_KEYS))}."))
-    spec = DesignSpec(source=doc.file)
+    spec = DesignSpec(source=doc.file, limits=_copy(data.get("limits")) if data.get("limits") is not None else None)
     obj = d.get("objective", spec.objective)
     if obj not in OBJECTIVES:
         close = difflib.get_close_matches(str(obj), OBJECTIVES, n=1)
@@ -368,6 +372,8 @@ def parse_design(doc, scenario, *, allow_modules=()):
         spec.seed = spec.seed if v is None else v
     acfg = scenario.config.get("actuator") or {}
     cls = type(scenario.actuator)
+    x0, y0, x1, y1 = scenario.workspace.bounds
+    span = max(x1 - x0, y1 - y0)
     free = d.get("free") or {}
     if not isinstance(free, dict):
         probs.err(base + ("free",), "expected a mapping of actuator key -> range, e.g. "
@@ -377,7 +383,7 @@ def parse_design(doc, scenario, *, allow_modules=()):
         probs.err(base + ("free",), f"at most {MAX_FREE} free parameters, found {len(free)}.")
         free = {}
     for key, rng_spec in free.items():
-        p = _free_parameter(probs, base + ("free", key), key, rng_spec, acfg, cls)
+        p = _free_parameter(probs, base + ("free", key), key, rng_spec, acfg, cls, span)
         if p is not None:
             spec.free.append(p)
     if "keep" in d:
@@ -409,7 +415,7 @@ def parse_design(doc, scenario, *, allow_modules=()):
     return spec
 
 
-def _free_parameter(probs, ypath, key, spec, acfg, cls):
+def _free_parameter(probs, ypath, key, spec, acfg, cls, span):
     try:
         path = _parse_path(key)
         concrete = _expand(acfg, path)
@@ -465,16 +471,18 @@ def _free_parameter(probs, ypath, key, spec, acfg, cls):
     if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
         probs.err(ypath, f"the range must satisfy lo < hi, found [{rng[0]}, {rng[1]}].")
         return None
-    big = max(abs(lo), abs(hi))
-    scale = max(abs(float(starts[0])), 1e-300)
-    if kind == "continuous" and big > 0 and (hi - lo) > 10 ** _MAX_RANGE_DECADES * scale and float(starts[0]) != 0:
+    s0 = float(starts[0])
+    if kind == "continuous" and unit == "m" and span and hi - lo > _MAX_LENGTH_SPANS * span:
+        probs.err(ypath, f"the range [{rng[0]}, {rng[1]}] is more than {_MAX_LENGTH_SPANS:g} times the workspace "
+                         f"({format_quantity(span, 'm')} across): check the unit.")
+        return None
+    if kind == "continuous" and unit != "m" and s0 != 0 and hi - lo > 10 ** _MAX_RANGE_DECADES * abs(s0):
         probs.err(ypath, f"the range [{rng[0]}, {rng[1]}] is more than 1e{_MAX_RANGE_DECADES:g} times the start "
-                         f"value {format_quantity(float(starts[0]), unit)}: check the unit.")
+                         f"value {format_quantity(s0, unit)}: check the unit.")
         return None
     if kind == "integer" and hi - lo > 10_000:
         probs.err(ypath, f"an integer range wider than 10000 values is refused, found [{int(lo)}, {int(hi)}].")
         return None
-    s0 = float(starts[0])
     if not lo <= s0 <= hi:
         probs.err(ypath, f"the start value {format_quantity(s0, unit)} (in the actuator section) lies outside the "
                          f"range [{format_quantity(lo, unit)}, {format_quantity(hi, unit)}]; widen the range or "
@@ -669,6 +677,11 @@ class _Builder:
         from .scenario import scenario_to_dict  # noqa: PLC0415
 
         self.base = _copy(scenario_to_dict(scenario))
+        # The normalised limits list every channel of the start design with its bounds then; a
+        # candidate with other channels or bounds takes the file's own section instead.
+        self.base.pop("limits", None)
+        if spec.limits is not None:
+            self.base["limits"] = _copy(spec.limits)
         self.file = str(scenario.source or "<scenario>")
         self.free = list(spec.free)
         self.keep = spec.keep
@@ -677,13 +690,16 @@ class _Builder:
     def config(self, x, kept=None, full_list=False):
         """The actuator section of candidate ``x`` (SI), keeping items ``kept`` (all if ``full_list``)."""
         acfg = _copy(self.base["actuator"])
+        if self.keep is not None:
+            _set(acfg, self.keep.path, _copy(self.keep.items))
+        # Free keys index the items as listed in the file ("coils[0]" is the file's first coil, kept or not).
         for p, v in zip(self.free, x):
             val = int(round(v)) if p.kind == "integer" else float(v)
             for q in _expand(acfg, p.path):
                 _set(acfg, q, val)
-        if self.keep is not None:
-            items = self.keep.items if (full_list or kept is None) else [self.keep.items[i] for i in kept]
-            _set(acfg, self.keep.path, _copy(items))
+        if self.keep is not None and not (full_list or kept is None):
+            items = _get(acfg, self.keep.path)
+            _set(acfg, self.keep.path, [items[i] for i in kept])
         return acfg
 
     def scenario(self, acfg):
@@ -787,7 +803,19 @@ class _Evaluator:
         except (FieldplanError, ValueError) as exc:
             rec["message"] = "cannot build: " + " ".join(str(exc).split())[:300]
             return rec
-        bad = _violations(self.constraints, acfg, act)
+        if self.fast_keep and kept is not None:
+            # Scored with every item built in, but the design is the subset: constrain that one.
+            acfg = self.builder.config(x, kept)
+            needs_act = any(k in self.constraints for k in ("edge_margin", "max_total_power", "max_current",
+                                                            "max_voltage"))
+            try:
+                cact = self.builder.scenario(acfg).actuator if needs_act else act
+            except (FieldplanError, ValueError) as exc:
+                rec["message"] = "cannot build: " + " ".join(str(exc).split())[:300]
+                return rec
+        else:
+            cact = act
+        bad = _violations(self.constraints, acfg, cact)
         if bad:
             rec["loss"] = _PENALTY + sum(b[0] for b in bad)
             rec["message"] = "; ".join(b[1] for b in bad)[:300]
@@ -998,6 +1026,7 @@ class _Runner:
     def __init__(self, evaluator, spec, executor, progress):
         self.ev, self.spec, self.ex = evaluator, spec, executor
         self.candidates = []
+        self.memo = {}
         self.ref = None
         self.bar = None
         show = sys.stderr.isatty() if progress is None else bool(progress)
@@ -1013,26 +1042,32 @@ class _Runner:
         return tuple(float(np.clip(round(v) if p.kind == "integer" else v, p.lower, p.upper))
                      for p, v in zip(self.spec.free, x))
 
-    def run(self, xs, kept_list, phase):
-        """Evaluate up to the budget; returns the Candidates (fewer than asked when the budget ends)."""
-        tasks = [(self._clean(x), None if k is None else tuple(sorted(int(i) for i in k)))
-                 for x, k in zip(xs, kept_list)][:max(self.left(), 0)]
-        if not tasks:
-            return []
-        if self.ex is None or len(tasks) == 1:
-            recs = [self.ev(t) for t in tasks]
+    def run(self, xs, kept_list, phase, stop_at=None):
+        """Evaluate up to the budget (or ``stop_at`` candidates in all); returns the Candidates asked for
+        that are in the table (fewer than asked when the budget ends)."""
+        asked = [(self._clean(x), None if k is None else tuple(sorted(int(i) for i in k)))
+                 for x, k in zip(xs, kept_list)]
+        # A design evaluated before (DE's first member is the start) is answered from the table, free.
+        new, seen = [], set()
+        for t in asked:
+            if t not in self.memo and t not in seen:
+                new.append(t)
+                seen.add(t)
+        room = self.left() if stop_at is None else min(self.left(), stop_at - len(self.candidates))
+        new = new[:max(room, 0)]
+        if self.ex is None or len(new) <= 1:
+            recs = [self.ev(t) for t in new]
         else:
-            recs = list(self.ex.map(self.ev, tasks))
-        out = []
-        for (x, k), r in zip(tasks, recs):
+            recs = list(self.ex.map(self.ev, new))
+        for (x, k), r in zip(new, recs):
             metrics = {kk: v for kk, v in r.items() if kk not in ("feasible", "score", "loss", "message")}
             c = Candidate(len(self.candidates), phase, x, k, r["score"], r["feasible"], r["message"], metrics)
             c.loss = self.loss(r)
             self.candidates.append(c)
-            out.append(c)
+            self.memo[(x, k)] = c
         if self.bar is not None:
-            self.bar.update(len(out))
-        return out
+            self.bar.update(len(new))
+        return [self.memo[t] for t in asked if t in self.memo]
 
     def loss(self, rec):
         if not rec["feasible"]:
@@ -1087,11 +1122,14 @@ def _continuous(runner, spec, budget, kept, x0):
         integrality = [p.kind == "integer" for p in free]
 
         def mapper(func, xs):
+            # DE's own objective (func) is bypassed: every member goes through the runner's table.
             xs = list(xs)
-            room = stop_at - len(runner.candidates)
-            got = runner.run(xs[:max(room, 0)], [kept] * min(len(xs), max(room, 0)), "continuous")
-            losses = [c.loss for c in got]
-            return losses + [_PENALTY * 10] * (len(xs) - len(losses))
+            runner.run(xs, [kept] * len(xs), "continuous", stop_at=stop_at)
+            out = []
+            for x in xs:
+                c = runner.memo.get((runner._clean(x), kept))
+                out.append(c.loss if c is not None else _PENALTY * 10)   # past the budget: never selected
+            return out
 
         if maxiter == 0:
             runner.run(list(init), [kept] * len(init), "continuous")
@@ -1103,9 +1141,10 @@ def _continuous(runner, spec, budget, kept, x0):
         return
 
     def f(x):
-        if len(runner.candidates) >= stop_at:
+        got = runner.run([x], [kept], "continuous", stop_at=stop_at)
+        if not got:
             raise _BudgetSpent
-        return runner.run([x], [kept], "continuous")[0].loss
+        return got[0].loss
 
     try:
         dual_annealing(f, bounds, x0=np.asarray(x0, float), maxfun=budget, no_local_search=True,
@@ -1136,8 +1175,10 @@ def _keep_fields_check(builder, evaluator, x, keep, scenario):
     if bp.size != bs.size or bp.mode != bs.mode:
         return False
     scale = max(float(np.max(np.abs(bf.fields))), 1e-300)
-    return bool(np.allclose(bp.fields, bs.fields, rtol=1e-6, atol=1e-6 * scale)
-                and np.allclose(bp.drift, bs.drift, rtol=1e-6, atol=1e-6 * scale))
+    # Interpolated field tables (coil grids, plate grids) depend on the hardware's extent, so a
+    # rebuilt subset matches to the tables' accuracy (~1e-4 of the largest field), not to round-off.
+    tol = 1e-3 * scale
+    return bool(np.allclose(bp.fields, bs.fields, rtol=0, atol=tol) and np.allclose(bp.drift, bs.drift, rtol=0, atol=tol))
 
 
 def _materialised_ok(builder, x, scenario, keep):
@@ -1196,7 +1237,7 @@ def _subsets(runner, spec, x, start_kept, budget, seed_kept, rng):
             if room <= 0:
                 return
             batch = trials[:room]
-            got = runner.run([x] * len(batch), batch, "swap")
+            got = runner.run([x] * len(batch), batch, "swap", stop_at=stop_at)
             for c in got:
                 evaluated[c.kept] = c
             better = [c for c in got if c.feasible and c.score > cur.score]
