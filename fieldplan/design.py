@@ -55,6 +55,8 @@ __all__ = ["DesignSpec", "FreeParameter", "KeepSpec", "Candidate", "DesignResult
 MAX_EVALUATIONS = 5_000
 #: Largest number of random configurations per N, of N values, of bodies, and speed-map grid side.
 MAX_TRIALS, MAX_COUNTS, MAX_BODIES, MAX_GRID = 2_000, 32, 64, 256
+#: Largest total of steerability tests of one search (evaluations x configurations, or x grid cells).
+MAX_WORK = 20_000_000
 #: Largest number of free parameters and of items a ``keep`` list may hold.
 MAX_FREE, MAX_ITEMS = 64, 2_000
 #: Largest closed-loop trials per N of the final check.
@@ -411,6 +413,13 @@ def parse_design(doc, scenario, *, allow_modules=()):
             spec.final_check = out
     if spec.objective == "steerable_fraction":
         spec.counts = (spec.count,)
+    if spec.objective == "worst_speed":
+        work, what = spec.evaluations * spec.grid[0] * spec.grid[1], "evaluations x grid cells"
+    else:
+        work, what = spec.evaluations * spec.trials * len(spec.counts), "evaluations x trials x counts"
+    if work > MAX_WORK:
+        probs.err(base + ("evaluations",), f"{what} = {work:,} exceeds {MAX_WORK:,} steerability tests "
+                                           "(fieldplan.design.MAX_WORK); lower the budget, trials or grid.")
     probs.raise_if_any()
     return spec
 
@@ -1134,10 +1143,18 @@ def _continuous(runner, spec, budget, kept, x0):
         if maxiter == 0:
             runner.run(list(init), [kept] * len(init), "continuous")
             return
-        differential_evolution(lambda x: 0.0, bounds, init=init, maxiter=maxiter, polish=False, tol=0.0, atol=0.0,
-                               updating="deferred", workers=mapper, rng=np.random.default_rng(spec.seed),
-                               integrality=integrality if any(integrality) else None, mutation=(0.5, 1.0),
-                               recombination=0.7)
+        res = differential_evolution(lambda x: 0.0, bounds, init=init, maxiter=maxiter, polish=False, tol=0.0,
+                                     atol=0.0, updating="deferred", workers=mapper,
+                                     rng=np.random.default_rng(spec.seed),
+                                     integrality=integrality if any(integrality) else None, mutation=(0.5, 1.0),
+                                     recombination=0.7)
+        # The generations rarely use the budget exactly: spend the rest near DE's best member.
+        room = stop_at - len(runner.candidates)
+        if room > 0:
+            lo, hi = np.array([p.lower for p in free]), np.array([p.upper for p in free])
+            rng = np.random.default_rng(spec.seed + 2)
+            xs = np.clip(res.x + rng.normal(size=(room, d)) * 0.05 * (hi - lo), lo, hi)
+            runner.run(list(xs), [kept] * room, "continuous", stop_at=stop_at)
         return
 
     def f(x):
