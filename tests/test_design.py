@@ -332,3 +332,22 @@ def test_write_design_is_atomic(tmp_path, monkeypatch):
     with pytest.raises(RuntimeError):
         write_design(tmp_path / "out", res)
     assert not (tmp_path / "out").exists()
+
+
+def test_hardware_constraints_are_enforced_and_reported():
+    """Coil spacing, amplifier current and power: infeasible candidates stay in the table with the
+    reason, the best is feasible, and an infeasible start is refused naming the broken rule."""
+    path = os.path.join(ROOT, "scenarios", "design-coils.yaml")
+    text = open(path).read()
+    sc, spec = load_design(text)
+    spec.evaluations, spec.trials = 14, 4
+    res = search(sc, spec, progress=False)
+    assert res.best.feasible and res.best.x[1] <= 2.5 + 1e-12       # coils[0].current_limit <= max_current
+    bad = [c for c in res.candidates if not c.feasible]
+    assert all(("2.5 A" in c.message or "30 W" in c.message) for c in bad)
+    assert all(c.x[1] > 2.5 for c in bad)          # 4 kept coils: 1.5 ohm x (I0^2 + 3 x 4 A^2) <= 30 W binds later
+    # A ring of six coils 8 mm from the centre has neighbours 8 mm apart: 9 mm spacing is broken.
+    tight = text.replace("max_current: 2.5 A", 'min_spacing: {points: "coils[*].center", distance: 9 mm}')
+    sc2, spec2 = load_design(tight)
+    with pytest.raises(ScenarioError, match=r"start design is infeasible: points 0 and 1 of coils\[\*\]\.center"):
+        search(sc2, spec2, progress=False)
