@@ -35,11 +35,12 @@ from fieldplan.steer import _wilson, basis_function, count_curve
 FULL = os.environ.get("FIELDPLAN_FULL") == "1"
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 # file, N values, evaluation budget, largest N of the closed-loop check by default (a plate task with
-# three grains runs for minutes on two cores; FIELDPLAN_FULL=1 checks at the best design's own N).
+# three grains, an electrode task with two bodies, run for minutes on two cores; FIELDPLAN_FULL=1
+# checks at the best design's own N).
 CASES = {
     "coils": ("design-coils.yaml", (1, 2, 3), 24, 3),
     "plate": ("design-plate.yaml", (1, 2, 3, 4), 16, 2),
-    "electrodes": ("design-electrodes.yaml", (1, 2, 3), 20, 3),
+    "electrodes": ("design-electrodes.yaml", (1, 2, 3), 20, 1),
 }
 TRIALS = 32 if FULL else 16
 CHECK_TRIALS = 8 if FULL else 1
