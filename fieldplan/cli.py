@@ -176,6 +176,9 @@ def build_parser():
             fieldplan schema > SCENARIO-REFERENCE.md
             """)
     s.add_argument("--actuators-only", action="store_true", help="only list the registered actuators")
+    from .workflows.design import add_command as _add_design_command  # noqa: PLC0415
+
+    _add_design_command(add)
     from .lab.commands import add_commands as _add_lab_commands  # noqa: PLC0415
 
     _add_lab_commands(add, _nonneg_int)
@@ -607,7 +610,13 @@ def _cmd_play(args):
     return cmd_play(args)
 
 
-_COMMANDS.update(track=_cmd_track, play=_cmd_play)
+def _cmd_design(args):
+    from .workflows.design import design_command  # noqa: PLC0415
+
+    return design_command(args)
+
+
+_COMMANDS.update(track=_cmd_track, play=_cmd_play, design=_cmd_design)
 
 
 class _Terminated(KeyboardInterrupt):

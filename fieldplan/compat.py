@@ -37,6 +37,7 @@ MOVED_MODULES = {
     "fieldplan.steer": "fieldplan.analysis", "fieldplan.steer_plots": "fieldplan.plots.steerability",
     "fieldplan.tracking": "fieldplan.calibration.tracking", "fieldplan.calibrate": "fieldplan.calibration.calibrate",
     "fieldplan.compare": "fieldplan.workflows.compare", "fieldplan.export": "fieldplan.workflows.export",
+    "fieldplan.design": "fieldplan.workflows.design",
 }
 
 # A source checkout keeps the built-in actuators in the top-level actuators/ folder; an install maps

@@ -83,6 +83,8 @@ SCHEMA = {
         _k("variants", "list", doc="For `fieldplan compare`: named variants, each replacing whole "
                                    "sections of this file (an `actuator` without `type` overrides only the "
                                    "parameters listed)."),
+        _k("design", "section", doc="For `fieldplan design`: free actuator keys, subsets to keep, objective, "
+                                    "constraints and budget (read by fieldplan.workflows.design; ignored by `run`)."),
     ],
     "workspace": [
         _k("boundary", "shape", "m", required=True, doc="Outer wall: " + SHAPE_DOC + "."),
