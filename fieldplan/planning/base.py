@@ -464,15 +464,25 @@ class ControllerBase:
         Used by the live loop to bridge measurement latency and dropped frames.
         """
         x = np.array(positions, dtype=float)
+        # Stages are kept inside the workspace's bounds (a fast body by a wall once took an RK stage
+        # past a field grid's window), and, as in the world, walls stop the bodies after each step.
+        lo, hi = np.array(self.workspace.bounds[:2]), np.array(self.workspace.bounds[2:])
+        box = lambda y: np.clip(y, lo, hi)                 # noqa: E731
+        radii = np.array([b.radius for b in self.bodies])
         for sg in segments:
             u = np.asarray(sg.values, dtype=float)
             dt = sg.duration / substeps
             for _ in range(substeps):
-                k1 = self._velocity(x, u)
-                k2 = self._velocity(x + 0.5 * dt * k1, u)
-                k3 = self._velocity(x + 0.5 * dt * k2, u)
-                k4 = self._velocity(x + dt * k3, u)
+                k1 = self._velocity(box(x), u)
+                k2 = self._velocity(box(x + 0.5 * dt * k1), u)
+                k3 = self._velocity(box(x + 0.5 * dt * k2), u)
+                k4 = self._velocity(box(x + dt * k3), u)
                 x = x + dt / 6.0 * (k1 + 2 * k2 + 2 * k3 + k4)
+                out = ~(self.workspace.contains(x, 0.0) & (self.workspace.clearance(x) >= radii))
+                if out.any():
+                    for r in np.unique(radii[out]):
+                        sel = out & (radii == r)
+                        x[sel] = self.workspace.project(x[sel], float(r))[0]
         return x
 
     def _velocity(self, xy, u):

@@ -67,7 +67,8 @@ GOAL_REGION = 3.0
 #: this, the shared fields move both nearly alike and they can hardly be parted again (measured on
 #: the 64-tone plate: two grains 2.0 mm apart, 4 mm short of goals 9.4 mm apart, stayed stuck
 #: together to the time limit). It is kept as a soft constraint; never more than 0.8 times their
-#: goals' distance, nor less than contact plus clearance.
+#: goals' distance, nor less than contact plus clearance, and only where both have that much room
+#: from the walls (near a wall, parting them would press one into it).
 SPREAD = 0.5
 #: Largest route grid (cells), so a very fine route_resolution is an error, not hours and gigabytes.
 MAX_GRID_CELLS = 1_000_000
@@ -208,9 +209,10 @@ class Controller(ControllerBase):
             contact = self.radii[i] + self.radii[j] + self.clearance
             ell = self.length_unit / s.trust_fraction          # the median variation length, m
             gd = np.linalg.norm(self.goals[i] - self.goals[j], axis=1)
+            self._contact = contact
             self._sep = np.maximum(contact, np.minimum(SPREAD * ell, 0.8 * gd))
         else:
-            self._sep = np.zeros(0)
+            self._contact = self._sep = np.zeros(0)
         # A dead zone around each goal (a third of the arrival radius, well inside the margin a plan
         # settles to): a body there costs nothing, so the shared fields may jostle it a little while
         # they bring the last ones in - without it the last body's pull is balanced by the others'.
@@ -328,17 +330,30 @@ class Controller(ControllerBase):
             val[:, i], grad[:, i] = m.value_and_gradient(flat[:, i])
         return val.reshape(shp + (self.n,)), grad.reshape(shp + (self.n, 2))
 
+    def _pair_need(self, flat, clr=None):
+        """Separation each pair must keep at positions ``flat`` (C, n, 2) m, shape (C, P) m.
+
+        The working separation where both bodies have that much room from the walls; near a wall
+        only contact plus clearance (parting them there would press one into the wall).
+        """
+        if clr is None:
+            clr = self.workspace.clearance(flat.reshape(-1, 2)).reshape(flat.shape[:2])
+        i, j = np.triu_indices(self.n, 1)
+        room = clr - self.radii[None]
+        roomy = np.minimum(room[:, i], room[:, j]) > self._sep[None]
+        return np.where(roomy, self._sep[None], self._contact[None])
+
     def _deficits(self, X, walls=True):
         """Separation (and wall) deficits of positions ``X`` (..., n, 2), m: (..., ) summed."""
         shp = X.shape[:-2]
         flat = X.reshape(-1, self.n, 2)
         total = np.zeros(flat.shape[0])
+        clr = self.workspace.clearance(flat.reshape(-1, 2)).reshape(flat.shape[:2])
         if self.n > 1:
             i, j = np.triu_indices(self.n, 1)
             dist = np.linalg.norm(flat[:, i] - flat[:, j], axis=2)
-            total += np.maximum(self._sep - dist, 0.0).sum(axis=1)
+            total += np.maximum(self._pair_need(flat, clr) - dist, 0.0).sum(axis=1)
         if walls:
-            clr = self.workspace.clearance(flat.reshape(-1, 2)).reshape(flat.shape[:2])
             total += np.maximum(self.radii[None] - clr, 0.0).sum(axis=1)
         return total.reshape(shp)
 
@@ -532,10 +547,10 @@ class Controller(ControllerBase):
             diff = Xs[:, i] - Xs[:, j]
             dist = np.linalg.norm(diff, axis=2)
             pn = diff / np.maximum(dist, 1e-300)[..., None]
-            need = self._sep
+            need = self._pair_need(Xs)
             reach = 2.0 * np.sqrt(2.0) * (delta[:, i] + delta[:, j])
-            active = dist < need[None] + reach
-            pg = np.where(active, need[None] / L, -np.inf)
+            active = dist < need + reach
+            pg = np.where(active, need / L, -np.inf)
         # walls: the nearest wall of each body at each period, active where within reach
         flat = Xs.reshape(-1, 2)
         wpts, wnrm = self.workspace.nearest_wall(flat)

@@ -322,3 +322,13 @@ def test_time_share_error_diffusion_plays_mixes_shorter_than_a_dwell():
                 assert d >= 0.04 - 1e-9 and abs(d / 0.02 - round(d / 0.02)) < 1e-6
                 played[[p.name for p in ctrl._prim_objs()].index(sg.label)] += d
     np.testing.assert_allclose(played / (periods * ctrl.period), ask, atol=0.04 / (periods * ctrl.period) + 1e-12)
+
+
+def test_prediction_stops_at_the_walls_as_the_world_does():
+    # The live loop bridges latency with the model's prediction; a body driven into a wall stays in
+    # the workspace (and no field is evaluated outside it).
+    from fieldplan.contract.actuator import Segment
+    ctrl = Controller(UniformDrive(2e-5), [BEAD], WS, [[6e-4, 5e-4]])
+    ctrl.prepare([[5e-4, 5e-4]])
+    x = ctrl.predict([[9.9e-4, 5e-4]], [Segment(0.0, 10.0, np.array([1.0, 0.0]), "push")])
+    assert WS.contains(x, BEAD.radius * (1 - 1e-6)).all() and x[0, 0] > 9e-4
