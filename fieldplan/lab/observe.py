@@ -27,7 +27,7 @@ from scipy.optimize import linear_sum_assignment
 
 from ..errors import FieldplanError
 from .pixels import PixelMap
-from .video import _trackpy, estimate_minmass, trackpy_settings
+from .video import load_trackpy, estimate_minmass, trackpy_settings
 
 __all__ = ["CameraObserver", "camera_observer"]
 
@@ -117,7 +117,7 @@ class CameraObserver:
     # -- the tracker side -----------------------------------------------------------------
     def detect(self, image):
         """Detections in ``image`` as workspace positions, m, shape (k, 2)."""
-        tp = _trackpy()
+        tp = load_trackpy()
         img = np.asarray(image, dtype=float)
         if img.ndim != 2:
             raise FieldplanError(f"camera frame must be a 2-D image, got shape {img.shape}.")

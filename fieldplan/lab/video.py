@@ -45,7 +45,7 @@ from . import require
 from .inputlog import InputLog, read_input_log
 from .pixels import PixelMap
 
-__all__ = ["VideoError", "VideoTracks", "read_frames", "count_frames", "trackpy_settings", "estimate_minmass",
+__all__ = ["VideoError", "load_trackpy", "VideoTracks", "read_frames", "count_frames", "trackpy_settings", "estimate_minmass",
            "locate", "link", "tracks_from_features", "tracks_from_table", "track_video"]
 
 #: File endings read with tifffile (page by page, so a long stack is never loaded at once).
@@ -58,7 +58,8 @@ class VideoError(FieldplanError):
     """A video, a features table or a tracking setting is unusable."""
 
 
-def _trackpy():
+def load_trackpy():
+    """The trackpy module, quietened (its per-frame log lines would flood a live run); a clear error if missing."""
     tp = require("trackpy", what="locating and linking bodies in video")
     tp.quiet()
     return tp
@@ -196,7 +197,7 @@ def estimate_minmass(frame, diameter, *, count=None, separation=None):
     brightest features; without it, the median plus 8 robust deviations (MAD) of all local maxima
     (noise maxima vastly outnumber bodies). Both are common practice, no source.
     """
-    tp = _trackpy()
+    tp = load_trackpy()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         f = tp.locate(frame, diameter, minmass=0, separation=separation)
@@ -233,7 +234,7 @@ def locate(frames, *, diameter, minmass=None, separation=None, count=None, progr
     **locate_options
         Passed to ``trackpy.locate`` (``percentile``, ``noise_size``, ``preprocess``, ...).
     """
-    tp = _trackpy()
+    tp = load_trackpy()
     pd = require("pandas", what="trackpy tables")
     out = []
     it = frames
@@ -275,7 +276,7 @@ def link(features, search_range, *, memory=3, predictive=True, adaptive_stop=Non
     adaptive_stop : float, optional
         See ``trackpy.link``.
     """
-    tp = _trackpy()
+    tp = load_trackpy()
     if len(features) == 0:
         raise VideoError("no features to link (raise the sensitivity: lower minmass).")
     opts = {"memory": int(memory)}

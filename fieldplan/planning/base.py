@@ -21,7 +21,7 @@ from .step import variation_length
 from ..errors import WorkspaceError
 from .settings import PlanSettings, check_goals
 
-__all__ = ["ControllerBase"]
+__all__ = ["ControllerBase", "directional_speed"]
 
 #: Relative margin under each declared RMS limit that the controllers plan to.
 RMS_MARGIN = 1e-3
@@ -496,7 +496,7 @@ class ControllerBase:
         return np.linalg.norm(np.asarray(positions, float) - self.goals, axis=1) <= margin * self.tolerance
 
 
-def _directional_speed(basis, directions, lower, upper):
+def directional_speed(basis, directions, lower, upper):
     """Speed each body alone could reach along its own unit direction, m/s, shape (n,)."""
     proj = np.einsum("knc,nc->kn", basis.fields, directions)
     drift = np.einsum("nc,nc->n", basis.drift, directions)

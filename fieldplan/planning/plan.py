@@ -39,7 +39,7 @@ from .step import (StepData, StepProgram, pair_slots, point_at, polyline_arcleng
 from ..errors import WorkspaceError
 from ..result import Result
 from . import Controller, PlanSettings, check_goals, make_controller
-from .base import ControllerBase, _directional_speed
+from .base import ControllerBase, directional_speed
 from .routes import plan_routes, route_length
 
 __all__ = ["PlanSettings", "Controller", "StepController", "plan", "PlanResult", "check_goals"]
@@ -233,7 +233,7 @@ class StepController(ControllerBase):
         dirs = ahead - p
         nd = np.linalg.norm(dirs, axis=1, keepdims=True)
         dirs = np.where(nd > 0, dirs / np.maximum(nd, 1e-300), 0.0)
-        vdir = _directional_speed(B0, dirs, self._lo * self._scale, self._hi * self._scale)
+        vdir = directional_speed(B0, dirs, self._lo * self._scale, self._hi * self._scale)
         adv = np.clip(vdir * T, 0.25 * self.tolerance, delta)
         # -- stalls
         self._B0 = B0
