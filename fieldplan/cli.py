@@ -24,7 +24,7 @@ __all__ = ["main", "build_parser", "EXIT_OK", "EXIT_NOT_REACHED", "EXIT_BAD_INPU
 EXIT_OK, EXIT_NOT_REACHED, EXIT_BAD_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
 
 
-class _UserError(Exception):
+class UserError(Exception):
     """A problem with what the user gave us (exit 2, no traceback)."""
 
 
@@ -221,7 +221,8 @@ def _nonneg_int(text):
     return v
 
 
-def _say(args, *lines, err=False):
+def say(args, *lines, err=False):
+    """Print lines for the user (stdout, or stderr with ``err``); ``--quiet`` silences all but errors."""
     if getattr(args, "quiet", False) and not err:
         return
     print(*lines, sep="\n", file=sys.stderr if err else sys.stdout, flush=True)
@@ -233,11 +234,13 @@ def _warn(args, text):
         print(f"warning: {text}", file=sys.stderr, flush=True)
 
 
-def _show_progress(args):
+def show_progress(args):
+    """Whether to draw progress bars: not ``--quiet`` and stderr is a terminal."""
     return not getattr(args, "quiet", False) and sys.stderr.isatty()
 
 
-def _load(path, args, check_only=False):
+def load_for_command(path, args, check_only=False):
+    """Load a scenario file for a command, announcing plug-ins it imports; errors become :class:`UserError`."""
     from .scenario import load_scenario  # noqa: PLC0415
 
     def announce(module, origin, why):
@@ -245,7 +248,7 @@ def _load(path, args, check_only=False):
               file=sys.stderr, flush=True)
 
     sc = load_scenario(path, allow_modules=getattr(args, "allow_module", None) or (), on_import=announce,
-                       check_only=check_only, progress=_show_progress(args))
+                       check_only=check_only, progress=show_progress(args))
     for w in sc.warnings:
         _warn(args, w)
     return sc
@@ -267,7 +270,7 @@ def _prepare_out(args, out, inputs):
 
     check_output_folder(out, args.force, inputs)
     for p in clean_stale_temps(out):
-        _say(args, f"note: removed {os.path.basename(p)}, a temporary folder left by an earlier run that was "
+        say(args, f"note: removed {os.path.basename(p)}, a temporary folder left by an earlier run that was "
                    "killed while writing.", err=True)
 
 
@@ -289,7 +292,7 @@ def _cmd_run(args):
     from .workflows.compare import run_scenario  # noqa: PLC0415
     from .workflows.export import write_outputs  # noqa: PLC0415
 
-    sc = _load(args.scenario, args)
+    sc = load_for_command(args.scenario, args)
     _note_variants(args, sc, "run", "plans and simulates")
     out = args.out or _default_out(sc, "output")
     inputs = _inputs([args.scenario, args.schedule], [sc])
@@ -299,13 +302,13 @@ def _cmd_run(args):
         schedule = _read_schedule(args.schedule, sc)
     t0 = time.perf_counter()
     if sc.mode == "open_loop" and schedule is None:
-        _say(args, f"planning {sc.name}: {len(sc.bodies)} bodies, {type(sc.actuator).__name__} with "
+        say(args, f"planning {sc.name}: {len(sc.bodies)} bodies, {type(sc.actuator).__name__} with "
                    f"{len(sc.actuator.channels)} channels ...")
     try:
-        run = run_scenario(sc, schedule=schedule, trials=args.trials, seed=args.seed, progress=_show_progress(args))
+        run = run_scenario(sc, schedule=schedule, trials=args.trials, seed=args.seed, progress=show_progress(args))
     except LimitError as exc:
         what = "the given schedule" if schedule is not None else "the planned schedule"
-        raise _UserError(f"refusing to export {what}: {exc} Nothing was written.") from None
+        raise UserError(f"refusing to export {what}: {exc} Nothing was written.") from None
     outputs = sc.outputs
     if args.no_plots:
         import dataclasses  # noqa: PLC0415
@@ -314,19 +317,19 @@ def _cmd_run(args):
     try:
         files = write_outputs(out, run, force=args.force, outputs=outputs, inputs=inputs)
     except LimitError as exc:
-        raise _UserError(f"refusing to export the schedule: {exc} Nothing was written.") from None
+        raise UserError(f"refusing to export the schedule: {exc} Nothing was written.") from None
     agg = run.aggregate()
-    _say(args, f"{sc.name}: {run.message} ({time.perf_counter() - t0:.1f} s)")
+    say(args, f"{sc.name}: {run.message} ({time.perf_counter() - t0:.1f} s)")
     if run.trials:
-        _say(args, f"  success rate {100 * agg['success_rate']:.0f} %, mean final error "
+        say(args, f"  success rate {100 * agg['success_rate']:.0f} %, mean final error "
                    f"{format_quantity(agg['final_error'], 'm')}, min separation "
                    f"{format_quantity(agg['min_separation'], 'm')}")
     if run.schedule is not None:
-        _say(args, f"  schedule: {run.schedule.n_segments} segments, {format_quantity(run.schedule.duration, 's', 4)}, checked "
+        say(args, f"  schedule: {run.schedule.n_segments} segments, {format_quantity(run.schedule.duration, 's', 4)}, checked "
                    "against the declared limits")
-    _say(args, f"outputs in {os.path.abspath(out)}:")
+    say(args, f"outputs in {os.path.abspath(out)}:")
     for role, path in sorted(files.items(), key=lambda kv: os.path.basename(kv[1])):
-        _say(args, f"  {os.path.basename(path)}")
+        say(args, f"  {os.path.basename(path)}")
     return run.exit_code
 
 
@@ -334,17 +337,17 @@ def _read_schedule(path, sc):
     from .contract.schedule import Schedule  # noqa: PLC0415
 
     if not os.path.exists(path):
-        raise _UserError(f"{path}: no such schedule file.")
+        raise UserError(f"{path}: no such schedule file.")
     if not os.path.isfile(path):
-        raise _UserError(f"{path}: not a regular file (a folder, device or pipe cannot be a schedule).")
+        raise UserError(f"{path}: not a regular file (a folder, device or pipe cannot be a schedule).")
     try:
         if path.lower().endswith(".json"):
             return Schedule.read_json(path)
         return Schedule.read_csv(path, sc.actuator.channels)
     except FieldplanError as exc:
-        raise _UserError(f"{path}: {exc}") from None
+        raise UserError(f"{path}: {exc}") from None
     except (ValueError, KeyError, IndexError, json.JSONDecodeError) as exc:
-        raise _UserError(f"{path}: cannot read the schedule ({type(exc).__name__}: {exc}).") from None
+        raise UserError(f"{path}: cannot read the schedule ({type(exc).__name__}: {exc}).") from None
 
 
 # ---------------------------------------------------------------------------------------------
@@ -356,14 +359,14 @@ def _parse_seeds(text):
         else:
             n = int(text)
             if n > MAX_SEEDS:           # before building the list
-                raise _UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {n}.")
+                raise UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {n}.")
             seeds = list(range(n))
     except ValueError:
-        raise _UserError(f"--seeds: expected a count or a comma list of whole numbers, got {text!r}.") from None
+        raise UserError(f"--seeds: expected a count or a comma list of whole numbers, got {text!r}.") from None
     if len(seeds) > MAX_SEEDS:
-        raise _UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {len(seeds)}.")
+        raise UserError(f"--seeds: at most {MAX_SEEDS} seeds, got {len(seeds)}.")
     if not seeds or any(s < 0 for s in seeds):
-        raise _UserError(f"--seeds: need at least one seed >= 0, got {text!r}.")
+        raise UserError(f"--seeds: need at least one seed >= 0, got {text!r}.")
     return seeds
 
 
@@ -378,22 +381,22 @@ def _cmd_compare(args):
     names = [s.name for s in scenarios]
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
-        raise _UserError(f"two scenarios or variants share the label(s) {dup}; give each file a distinct 'name'.")
+        raise UserError(f"two scenarios or variants share the label(s) {dup}; give each file a distinct 'name'.")
     inputs = _inputs(args.scenarios, [sc for _, sc in loaded])
     _prepare_out(args, args.out, inputs)
     n_tasks = len(scenarios) * len(seeds)
     workers = args.workers if args.workers is not None else min(os.cpu_count() or 1, n_tasks)
-    _say(args, f"comparing {len(scenarios)} variant(s) x {len(seeds)} seed(s), {args.trials} trial(s) each"
+    say(args, f"comparing {len(scenarios)} variant(s) x {len(seeds)} seed(s), {args.trials} trial(s) each"
                + (f" on {args.scheduler}" if args.scheduler else f" with {workers} worker(s)") + " ...")
     with make_executor(args.scheduler, workers) as ex:
-        cmp = compare(scenarios, seeds=seeds, trials=args.trials, executor=ex, progress=_show_progress(args))
+        cmp = compare(scenarios, seeds=seeds, trials=args.trials, executor=ex, progress=show_progress(args))
     out = os.path.abspath(args.out)
     write_comparison(out, cmp, seeds=seeds, trials=args.trials, force=args.force, inputs=inputs)
-    _say(args, cmp.to_markdown())
+    say(args, cmp.to_markdown())
     for r in cmp.rows:
         for m in r["error_messages"][:1]:
             _warn(args, f"variant {r['label']}: {len(r['error_messages'])} run(s) failed: {m}")
-    _say(args, f"outputs in {out}:", "  comparison.md", "  comparison.csv", "  comparison.json", "  comparison.png")
+    say(args, f"outputs in {out}:", "  comparison.md", "  comparison.csv", "  comparison.json", "  comparison.png")
     # The comparison is the result: it succeeded when it produced numbers, whatever each variant's
     # success (a comparison whose failing variant is the point must not fail the command; the table
     # marks each variant below its required rate). Exit 1 only when no run produced anything.
@@ -406,7 +409,7 @@ def _cmd_inspect(args):
     from .scenario import MAX_BODIES  # noqa: PLC0415
     from .workflows.inspect import inspect_scenario  # noqa: PLC0415
 
-    sc = _load(args.scenario, args)
+    sc = load_for_command(args.scenario, args)
     _note_variants(args, sc, "inspect", "inspects")
     out = os.path.abspath(args.out or _default_out(sc, "inspect"))
     inputs = _inputs([args.scenario], [sc])
@@ -416,13 +419,13 @@ def _cmd_inspect(args):
         try:
             counts = [int(x) for x in args.counts.split(",") if x.strip()]
         except ValueError:
-            raise _UserError(f"--counts: expected a comma list of whole numbers, got {args.counts!r}.") from None
+            raise UserError(f"--counts: expected a comma list of whole numbers, got {args.counts!r}.") from None
         if not counts or min(counts) < 1 or max(counts) > MAX_BODIES:
-            raise _UserError(f"--counts: counts must be from 1 to {MAX_BODIES}, got {args.counts!r}.")
+            raise UserError(f"--counts: counts must be from 1 to {MAX_BODIES}, got {args.counts!r}.")
     lines, _ = inspect_scenario(sc, out, force=args.force, inputs=inputs, counts=counts, grid=args.grid,
-                                trials=args.trials, progress=_show_progress(args))
-    _say(args, *lines)
-    _say(args, f"outputs in {out}:", *(f"  {n}" for n in sorted(os.listdir(out)) if not n.startswith(".")))
+                                trials=args.trials, progress=show_progress(args))
+    say(args, *lines)
+    say(args, f"outputs in {out}:", *(f"  {n}" for n in sorted(os.listdir(out)) if not n.startswith(".")))
     return EXIT_OK
 
 
@@ -431,7 +434,7 @@ def _load_each(paths, args, check_only=False):
     loaded, problems = [], []
     for path in paths:
         try:
-            loaded.append((path, _load(path, args, check_only=check_only)))
+            loaded.append((path, load_for_command(path, args, check_only=check_only)))
         except ScenarioError as exc:
             problems.extend(exc.problems)
     return loaded, problems
@@ -457,7 +460,7 @@ def _cmd_validate(args):
             else:
                 nc = len(sc.actuator.channels)
                 what = f"{type(sc.actuator).__name__} with {nc} channel{'' if nc == 1 else 's'}"
-            _say(args, f"{path}: ok - {nb} bod{'y' if nb == 1 else 'ies'}, {what}"
+            say(args, f"{path}: ok - {nb} bod{'y' if nb == 1 else 'ies'}, {what}"
                        + (f", {len(sc.variants)} variants" if sc.variants else ""))
     if problems:
         raise ScenarioError(problems)
@@ -468,25 +471,25 @@ def _cmd_fit(args):
     try:
         from .calibration.calibrate import calibrate_command  # noqa: PLC0415
     except ImportError as exc:
-        raise _UserError(f"calibration is not available ({exc}).") from None
+        raise UserError(f"calibration is not available ({exc}).") from None
 
     if not os.path.exists(args.tracks):
-        raise _UserError(f"{args.tracks}: no such tracking file.")
+        raise UserError(f"{args.tracks}: no such tracking file.")
     if not os.path.isfile(args.tracks):
-        raise _UserError(f"{args.tracks}: not a regular file (a folder, device or pipe is not a tracking CSV).")
+        raise UserError(f"{args.tracks}: not a regular file (a folder, device or pipe is not a tracking CSV).")
     _prepare_out(args, args.out, [args.tracks])
     units = None
     if args.units:
         units = {}
         for item in args.units.split(","):
             if "=" not in item:
-                raise _UserError(f"--units: expected col=unit pairs, got {item!r}.")
+                raise UserError(f"--units: expected col=unit pairs, got {item!r}.")
             k, u = item.split("=", 1)
             units[k.strip()] = u.strip()
     prims = [p.strip() for p in args.primitives.split(",")] if args.primitives else None
     note = args.note if args.note is not None else _previous_note(os.path.join(args.out, f"{args.name}.json"))
     if args.note is None and note:
-        _say(args, f"keeping the note of the actuator being replaced: {note!r} (change it with --note)")
+        say(args, f"keeping the note of the actuator being replaced: {note!r} (change it with --note)")
     out = os.path.abspath(args.out)
     with output_folder(out, args.force, [args.tracks], command="fit") as tmp:
         rep = calibrate_command(args.tracks, tmp, primitives=prims, units=units, idle=args.idle, name=args.name,
@@ -495,17 +498,17 @@ def _cmd_fit(args):
     if rep.get("skipped_rows"):
         sk = rep["skipped_rows"]
         # Not a warning that -q silences: the user asked for rows to be dropped and must see which.
-        _say(args, f"warning: skipped {len(sk)} bad row(s) of {args.tracks} (--skip-bad-rows): "
+        say(args, f"warning: skipped {len(sk)} bad row(s) of {args.tracks} (--skip-bad-rows): "
                    + "; ".join(sk[:5]) + (f"; ... ({len(sk) - 5} more in the report)" if len(sk) > 5 else ""),
              err=True)
     for w in rep.get("warnings", []):
         _warn(args, w)
     for row in rep.get("fields", [])[:40]:
         cv, rel = row.get("cv_rmse_m_per_s"), row.get("cv_relative")
-        _say(args, f"  {row.get('kind', '?')} / {row.get('primitive', '?')}: {row.get('n_samples', '?')} samples, "
+        say(args, f"  {row.get('kind', '?')} / {row.get('primitive', '?')}: {row.get('n_samples', '?')} samples, "
                    f"cross-validated error {format_quantity(cv, 'm/s')}"
                    + (f" ({100 * rel:.0f} % of the RMS speed)" if isinstance(rel, float) else ""))
-    _say(args, f"calibrated actuator: {rep['actuator']}", f"report: {rep['report']}",
+    say(args, f"calibrated actuator: {rep['actuator']}", f"report: {rep['report']}",
          *[f"plot: {p}" for p in (rep.get("plots") or {}).values()],
          f"use it in a scenario as: actuator: {{type: calibrated, path: {rep['actuator']}}}")
     return EXIT_OK
@@ -672,7 +675,7 @@ def _dispatch(args):
         for p in exc.problems:
             print("  " + ScenarioError.format_problem(*p), file=sys.stderr)
         return EXIT_BAD_INPUT
-    except (FieldplanError, _UserError) as exc:
+    except (FieldplanError, UserError) as exc:
         print(f"fieldplan: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except _Terminated as exc:

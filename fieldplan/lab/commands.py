@@ -87,21 +87,21 @@ def add_commands(add, nonneg_int):
 
 def cmd_track(args):
     """``fieldplan track``: returns the exit code; bad input raises the command's user error (exit 2)."""
-    from ..cli import EXIT_OK, _say, _show_progress, _UserError  # noqa: PLC0415 - the command's own helpers
+    from ..cli import EXIT_OK, say, show_progress, UserError  # noqa: PLC0415 - the command's own helpers
     from ..units import to_si  # noqa: PLC0415
     from .pixels import PixelMap, read_marks  # noqa: PLC0415
 
     if os.path.exists(args.out) and not args.force:
-        raise _UserError(f"{args.out} exists; pass --force to replace it.")
+        raise UserError(f"{args.out} exists; pass --force to replace it.")
     if not os.path.exists(args.video):
-        raise _UserError(f"{args.video}: no such file.")
+        raise UserError(f"{args.video}: no such file.")
     for name in ("video", "settings", "marks"):
         src = getattr(args, name)
         if src and os.path.exists(src) and os.path.exists(args.out) and os.path.samefile(src, args.out):
-            raise _UserError(f"--out {args.out} is the {name} file; choose another name (inputs are never replaced).")
+            raise UserError(f"--out {args.out} is the {name} file; choose another name (inputs are never replaced).")
     given = [k for k in ("px", "marks", "affine") if getattr(args, k)]
     if len(given) > 1:
-        raise _UserError(f"give one pixel map, not {' and '.join('--' + k for k in given)}: --px (with --rotation, "
+        raise UserError(f"give one pixel map, not {' and '.join('--' + k for k in given)}: --px (with --rotation, "
                          "--offset, --flip-y), --marks or --affine.")
     if args.marks:
         pm = PixelMap.from_marks(*read_marks(args.marks))
@@ -112,13 +112,13 @@ def cmd_track(args):
         if args.offset:
             parts = [p.strip() for p in args.offset.split(",")]
             if len(parts) != 2:
-                raise _UserError(f"--offset: expected 'x,y' with units, got {args.offset!r}.")
+                raise UserError(f"--offset: expected 'x,y' with units, got {args.offset!r}.")
             off = tuple(to_si(p, "m", name="--offset") for p in parts)
         import math  # noqa: PLC0415
 
         pm = PixelMap.from_scale(args.px, rotation=math.radians(args.rotation), offset=off, flip_y=args.flip_y)
     else:
-        raise _UserError("give the pixel size (--px '0.65 um'), reference marks (--marks) or --affine.")
+        raise UserError("give the pixel size (--px '0.65 um'), reference marks (--marks) or --affine.")
     from .inputlog import read_input_log  # noqa: PLC0415
 
     fps = args.fps
@@ -140,26 +140,26 @@ def cmd_track(args):
             res = track_video(args.video, settings=log, fps=fps, pixel_map=pm, radius=args.radius,
                               diameter=args.diameter, minmass=args.minmass, search_range=args.search_range,
                               memory=args.memory, count=args.count, min_length=args.min_length, kind=args.kind,
-                              out=args.out, progress=_show_progress(args), warn=False)
+                              out=args.out, progress=show_progress(args), warn=False)
     except LabDependencyError as exc:
-        raise _UserError(str(exc)) from None
+        raise UserError(str(exc)) from None
     sm = res.summary()
-    _say(args, f"{args.video}: {sm['frames']} frames, {sm['tracks']} tracks ({pm.describe()})")
+    say(args, f"{args.video}: {sm['frames']} frames, {sm['tracks']} tracks ({pm.describe()})")
     for r in res.report:
         notes = [f"{k} {r[k]}" for k in ("frames_missing", "gaps", "swaps", "outliers", "unlogged") if r[k]]
-        _say(args, f"  {r['track']}: frames {r['first_frame']}-{r['last_frame']}, seen in {r['frames_seen']}"
+        say(args, f"  {r['track']}: frames {r['first_frame']}-{r['last_frame']}, seen in {r['frames_seen']}"
                    + (", lost before the end" if r["lost"] else "") + ("; " + ", ".join(notes) if notes else ""))
     stubs = sum(1 for i in res.issues if i.kind == "stub")
     if stubs:
-        _say(args, f"  {stubs} track(s) shorter than {args.min_length} frames dropped")
-    _say(args, f"tracking CSV: {args.out}")
+        say(args, f"  {stubs} track(s) shorter than {args.min_length} frames dropped")
+    say(args, f"tracking CSV: {args.out}")
     if args.fit:
         from ..workflows.fit import calibrate_command  # noqa: PLC0415
 
         if os.path.exists(args.fit) and not args.force:
-            raise _UserError(f"output folder {args.fit!r} already exists; pass --force to write into it.")
+            raise UserError(f"output folder {args.fit!r} already exists; pass --force to write into it.")
         rep = calibrate_command(args.out, args.fit, plots=not args.quiet, warn=False)
-        _say(args, f"calibrated actuator: {rep['actuator']}")
+        say(args, f"calibrated actuator: {rep['actuator']}")
     return EXIT_OK
 
 
@@ -167,7 +167,7 @@ def cmd_play(args):
     """``fieldplan play``: returns the exit code (130 when interrupted; the instrument is then idle)."""
     import numpy as np  # noqa: PLC0415
 
-    from ..cli import EXIT_OK, _load, _say, _UserError  # noqa: PLC0415 - the command's own helpers
+    from ..cli import EXIT_OK, load_for_command, say, UserError  # noqa: PLC0415 - the command's own helpers
     from ..errors import LimitError  # noqa: PLC0415
     from .drivers import open_driver  # noqa: PLC0415
     from .pacing import RealTimeClock  # noqa: PLC0415
@@ -177,12 +177,12 @@ def cmd_play(args):
         for name in ("schedule", "profile", "limits", "scenario"):
             src = getattr(args, name)
             if src and os.path.exists(src) and os.path.samefile(src, args.log):
-                raise _UserError(f"--log {args.log} is the {name} file; choose another name (inputs are never replaced).")
-    sc = _load(args.scenario, args) if args.scenario else None
+                raise UserError(f"--log {args.log} is the {name} file; choose another name (inputs are never replaced).")
+    sc = load_for_command(args.scenario, args) if args.scenario else None
     if args.speed != 1.0 and not args.dry_run:
-        raise _UserError("--speed is for --dry-run only: a real instrument plays in real time.")
+        raise UserError("--speed is for --dry-run only: a real instrument plays in real time.")
     if not args.speed > 0:
-        raise _UserError(f"--speed must be > 0, got {args.speed}.")
+        raise UserError(f"--speed must be > 0, got {args.speed}.")
     limits = args.limits if args.limits else (sc.limits if sc is not None else None)
     schedule, lim = load_for_play(args.schedule, limits=limits, channels=sc.actuator.channels if sc else None)
     scale = None
@@ -190,15 +190,15 @@ def cmd_play(args):
         try:
             scale = [float(x) for x in args.scale.split(",")]
         except ValueError:
-            raise _UserError(f"--scale: expected numbers, got {args.scale!r}.") from None
+            raise UserError(f"--scale: expected numbers, got {args.scale!r}.") from None
     try:
         schedule.check(lim)
         driver = open_driver(args.driver, schedule.channels, lim, profile=args.profile, log=args.log,
                              dry_run=args.dry_run, rate=args.rate, scale=scale)
     except LimitError as exc:
-        raise _UserError(f"refusing to play {args.schedule}: {exc} Nothing was sent.") from None
+        raise UserError(f"refusing to play {args.schedule}: {exc} Nothing was sent.") from None
     except LabDependencyError as exc:
-        raise _UserError(str(exc)) from None
+        raise UserError(str(exc)) from None
     caution = ("Before you go on: instrument output OFF while connecting, interlocks closed, nobody in reach "
                "of the set-up.")
     head = ["DRY RUN: nothing is sent to any instrument."] if args.dry_run else [caution]
@@ -210,9 +210,9 @@ def cmd_play(args):
         except EOFError:
             answer = ""
         if answer.strip().lower() != "yes":
-            raise _UserError("not confirmed; nothing was sent (pass --yes to skip the prompt in scripts).")
+            raise UserError("not confirmed; nothing was sent (pass --yes to skip the prompt in scripts).")
     else:
-        _say(args, *lines)
+        say(args, *lines)
     on_segment = None
     sim = None
     if args.dry_run and sc is not None:
@@ -222,18 +222,18 @@ def cmd_play(args):
 
         def on_segment(j, seg):
             sim.apply(seg)
-    _say(args, f"playing {schedule.duration:.4g} s; Ctrl-C stops and sets the instrument to the idle input")
+    say(args, f"playing {schedule.duration:.4g} s; Ctrl-C stops and sets the instrument to the idle input")
     rep = play(schedule, driver, limits=lim, clock=RealTimeClock(speed=args.speed), on_segment=on_segment)
     lat = rep.latency
-    _say(args, rep.message, f"timing: latency median {1e3 * float(np.median(lat)) if len(lat) else 0:.2f} ms, max "
+    say(args, rep.message, f"timing: latency median {1e3 * float(np.median(lat)) if len(lat) else 0:.2f} ms, max "
                             f"{1e3 * float(np.max(lat)) if len(lat) else 0:.2f} ms, jitter {1e3 * rep.jitter:.2f} ms, "
                             f"{len(rep.overruns)} overrun(s)")
     if sim is not None:
         err = np.linalg.norm(sim.positions - sc.goals, axis=1)
-        _say(args, "simulated truth at the end: " + ", ".join(f"body {i} {e * 1e6:.3g} um from its goal"
+        say(args, "simulated truth at the end: " + ", ".join(f"body {i} {e * 1e6:.3g} um from its goal"
                                                                for i, e in enumerate(err)))
     if rep.log:
-        _say(args, f"log: {rep.log}")
+        say(args, f"log: {rep.log}")
     if rep.interrupted:
         # Ctrl-C: 130; a terminating signal the command turned into an interrupt: 128 + its number.
         return 128 + rep.signal if rep.signal else 130
