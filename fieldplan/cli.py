@@ -529,7 +529,7 @@ def _cmd_schema(args):
     from .scenario import actuator_params, schema_reference  # noqa: PLC0415
 
     if not args.actuators_only:
-        print(_with_planner_defaults(schema_reference()))
+        print(schema_reference())
     print("### Registered actuators\n")
     for name, target in sorted(available_actuators().items()):
         try:
@@ -540,58 +540,6 @@ def _cmd_schema(args):
             desc = f"(cannot load: {exc})"
         print(f"- `{name}` ({target}): {desc}")
     return EXIT_OK
-
-
-def _numpydoc_params(doc):
-    """``{name: (type, one-line meaning)}`` from the Parameters section of a numpydoc docstring."""
-    import re  # noqa: PLC0415
-
-    lines = textwrap.dedent("\n".join((doc or "").splitlines()[1:])).splitlines()
-    out, names, kind, text, inside = {}, [], "", [], False
-    for line in lines + ["Returns"]:
-        if line.strip() == "Parameters":
-            inside = True
-            continue
-        if not inside or set(line.strip()) == {"-"}:
-            continue
-        m = re.match(r"^(\w[\w, ]*?)\s*:\s*(.*)$", line)
-        if m or line.strip() in ("Returns", "Attributes", "Notes", "Examples", "Raises", "See Also"):
-            for n in names:
-                out[n] = (kind, " ".join(text))
-            if not m:
-                if out:
-                    break
-                continue
-            names, kind, text = [n.strip() for n in m[1].split(",")], m[2].strip(), []
-        elif line.strip():
-            text.append(line.strip())
-    return out
-
-
-def _with_planner_defaults(reference):
-    """The scenario reference with the ``planner`` section's ``*`` row replaced by every
-    ``fieldplan.planning.plan.PlanSettings`` field: its type, unit, default and meaning (from its docstring)."""
-    try:
-        from .scenario import PLANNER_UNITS, planner_fields  # noqa: PLC0415
-
-        defaults, cls = planner_fields()
-    except Exception:  # noqa: BLE001 - the reference must print even when the planner does not import
-        return reference
-    docs = _numpydoc_params(getattr(cls, "__doc__", ""))
-    rows = []
-    for name, default in defaults.items():
-        kind, meaning = docs.get(name, ("", ""))
-        kind = kind.replace(", optional", "").replace("|", "\\|") or type(default).__name__
-        shown = f"`{default}`" if default is not None else "automatic (see meaning)"
-        rows.append(f"| `{name}` | {kind} | {PLANNER_UNITS.get(name, '')} | {shown} | "
-                    f"{meaning.replace('|', chr(92) + '|')} |")
-    lines = reference.splitlines()
-    try:
-        start = lines.index("### `planner`")
-        star = next(i for i in range(start, len(lines)) if lines[i].startswith("| `*` |"))
-    except (ValueError, StopIteration):
-        return reference
-    return "\n".join(lines[:star] + rows + lines[star + 1:])
 
 
 _COMMANDS = {"run": _cmd_run, "compare": _cmd_compare, "inspect": _cmd_inspect, "validate": _cmd_validate,

@@ -3,6 +3,7 @@
 import json
 import os
 import pathlib
+import re
 import subprocess
 import sys
 import textwrap
@@ -280,6 +281,23 @@ def test_schema_lists_actuators(capsys):
     assert main(["schema", "--actuators-only"]) == 0
     out = capsys.readouterr().out
     assert "source-array" in out and "sources [m]" in out and "force [N]" in out
+
+
+def test_schema_lists_every_planner_setting_with_its_unit(capsys):
+    import dataclasses
+
+    from fieldplan.planning.settings import PlanSettings
+
+    assert main(["schema"]) == 0
+    out = capsys.readouterr().out
+    planner = out.split("### `planner`", 1)[1].split("\n### ", 1)[0]
+    cells = [re.split(r"(?<!\\)\|", ln) for ln in planner.splitlines() if ln.startswith("| `")]   # not at "\|"
+    rows = {c[1].strip(" `"): c[3].strip() for c in cells}
+    for f in dataclasses.fields(PlanSettings):
+        if f.name != "assign_goals":            # a scenario sets it as goals.unlabelled
+            assert rows[f.name] == f.metadata.get("unit", ""), f.name
+    assert set(rows) == {f.name for f in dataclasses.fields(PlanSettings)} - {"assign_goals"} | {"mode"}
+    assert rows["period"] == "s" and rows["tolerance"] == "m" and rows["iterations"] == ""
 
 
 def test_inspect_writes_fields_and_steerability(tmp_path, capsys):

@@ -117,13 +117,18 @@ class ChannelLimit:
     Every limit is met within :data:`LIMIT_RTOL` relative to it (see :func:`within_limit`).
     """
 
-    lower: float | None = None
-    upper: float | None = None
-    slew_rate: float | None = None
-    min_dwell: float | None = None
-    rms: float | None = None
-    rms_window: float | None = None
-    resolution: float | None = None
+    # Unit and one-line meaning per field (metadata), "<unit>" being the channel's unit: what scenario
+    # files (`limits.channels.<name>`) and their reference read (fieldplan.scenario.fields).
+    lower: float | None = field(default=None, metadata={"unit": "<unit>", "doc": "Lowest value."})
+    upper: float | None = field(default=None, metadata={"unit": "<unit>", "doc": "Highest value."})
+    slew_rate: float | None = field(default=None, metadata={"unit": "<unit>/s", "doc": "Largest change per second."})
+    min_dwell: float | None = field(default=None, metadata={"unit": "s", "doc": "Shortest non-idle segment."})
+    rms: float | None = field(default=None, metadata={"unit": "<unit>", "doc": "Largest RMS over any `rms_window`."})
+    rms_window: float | None = field(default=None, metadata={
+        "unit": "s", "doc": "RMS window (default: the whole schedule)."})
+    resolution: float | None = field(default=None, metadata={
+        "unit": "<unit>", "doc": "Smallest step of value the hardware outputs (default: the span / 1e9, rounded "
+                                 "down to a power of ten); exported values are multiples of it."})
 
     def __post_init__(self):
         for key in ("slew_rate", "min_dwell", "rms", "rms_window", "resolution"):
@@ -148,9 +153,14 @@ class HardwareLimits:
         Default minimum dwell for every channel, s.
     """
 
-    channels: dict = field(default_factory=dict)
-    time_step: float | None = None
-    min_dwell: float | None = None
+    # Unit, one-line meaning and kind per field (metadata): what scenario files (`limits:`) read.
+    channels: dict = field(default_factory=dict, metadata={
+        "kind": "map", "doc": "Per channel name: its limits (the keys of `limits.channels.<name>`), in the "
+                              "channel's unit."})
+    time_step: float | None = field(default=None, metadata={
+        "unit": "s", "doc": "Hardware time step: segments are quantised to it."})
+    min_dwell: float | None = field(default=None, metadata={
+        "unit": "s", "doc": "Shortest segment holding a non-idle value, every channel."})
 
     def __post_init__(self):
         for name, lim in self.channels.items():

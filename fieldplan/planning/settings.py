@@ -9,7 +9,7 @@ Examples
 from __future__ import annotations
 
 import dataclasses
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -108,37 +108,75 @@ class PlanSettings:
         Most extra periods spent on that settling.
     """
 
-    period: float | None = None
-    method: str = "horizon"
-    horizon: int | None = None
-    iterations: int = 3
-    replan_every: int = 1
-    balance: str = "squared"
-    field_table: bool = True
-    table_resolution: float | None = None
-    tolerance: float | None = None
-    time_limit: float | None = None
-    clearance: float | None = None
-    tracking_weight: float = 1.0
-    effort_weight: float = 1e-3
-    smoothness_weight: float = 1e-2
-    slack_weight: float = 1e3
-    progress_weight: float = 1.0
-    trust_fraction: float = 0.2
-    max_trust: float | None = None
-    route_resolution: float | None = None
-    field_aware_routes: bool = False
-    assign_goals: bool = False
-    max_steps: int | None = None
-    stall_window: int = 8
-    stall_progress: float = 0.05
-    relinearise: bool = True
-    backend: str = "osqp"
-    solver: str | None = None
-    separation_slots: int | None = None
-    timeshare_rounds: int = 4
-    arrival_margin: float = 0.5
-    settle_steps: int = 30
+    # Each field's unit, one-line meaning and allowed values (metadata) are what scenario files,
+    # `fieldplan schema` and the README reference read (fieldplan.scenario.fields); the checks are below.
+    period: float | None = field(default=None, metadata={
+        "unit": "s", "doc": "Control period (default: the median body moves about one trust radius per period)."})
+    method: str = field(default="horizon", metadata={
+        "choices": ("horizon", "step"),
+        "doc": "horizon: sequential convex programming over the horizon for all bodies at once; step: the "
+               "earlier route-tracking step controller."})
+    horizon: int | None = field(default=None, metadata={
+        "doc": "Periods the program looks ahead (default: from the fields' variation length and the bodies' "
+               "speeds; the step method 1)."})
+    iterations: int = field(default=3, metadata={
+        "doc": "Sequential convex programming iterations per period (horizon method)."})
+    replan_every: int = field(default=1, metadata={
+        "doc": "Periods of each plan played before planning again from new measurements (horizon method)."})
+    balance: str = field(default="squared", metadata={
+        "choices": ("time", "squared"),
+        "doc": "How the bodies' times-to-go are traded: their sum (time) or the sum of their squares (squared)."})
+    field_table: bool = field(default=True, metadata={
+        "doc": "Roll candidate sequences out on the field basis tabulated on a grid (horizon method; the "
+               "simulator always uses the exact model)."})
+    table_resolution: float | None = field(default=None, metadata={
+        "unit": "m", "doc": "Cell of that grid (default half the route grid cell)."})
+    tolerance: float | None = field(default=None, metadata={
+        "unit": "m", "doc": "Arrival radius (default each body's radius)."})
+    time_limit: float | None = field(default=None, metadata={
+        "unit": "s", "doc": "Longest plan (default: from the bodies' times to their goals)."})
+    clearance: float | None = field(default=None, metadata={
+        "unit": "m", "doc": "Extra distance kept from walls and between bodies (default half the largest radius)."})
+    tracking_weight: float = field(default=1.0, metadata={
+        "doc": "Objective weight of tracking (positions in trust radii)."})
+    effort_weight: float = field(default=1e-3, metadata={
+        "doc": "Objective weight of input effort (inputs in fractions of their span)."})
+    smoothness_weight: float = field(default=1e-2, metadata={
+        "doc": "Objective weight of input changes (in fractions of the channel span)."})
+    slack_weight: float = field(default=1e3, metadata={
+        "doc": "Exact-penalty weight of the soft constraints."})
+    progress_weight: float = field(default=1.0, metadata={
+        "doc": "Step method: reward of the common progress along the routes."})
+    trust_fraction: float = field(default=0.2, metadata={
+        "doc": "Trust radius per period as a fraction of the fields' variation length |f| / |grad f|."})
+    max_trust: float | None = field(default=None, metadata={
+        "unit": "m", "doc": "Largest trust radius (default 1/20 of the workspace's larger side)."})
+    route_resolution: float | None = field(default=None, metadata={
+        "unit": "m", "doc": "Route and cost-to-go grid cell (default fieldplan.routes.default_resolution)."})
+    field_aware_routes: bool = field(default=False, metadata={
+        "doc": "Step method: route edge cost is the time at the available speed instead of the length."})
+    assign_goals: bool = field(default=False, metadata={
+        "doc": "Bodies of the same kind may swap goals (in a scenario file: goals.unlabelled)."})
+    max_steps: int | None = field(default=None, metadata={
+        "doc": "Most controller steps of a plan (default: as many as the time limit needs, plus settling)."})
+    stall_window: int = field(default=8, metadata={
+        "doc": "Periods over which progress is measured to detect a stall."})
+    stall_progress: float = field(default=0.05, metadata={
+        "doc": "Step method: fraction of the possible progress below which a body stalls."})
+    relinearise: bool = field(default=True, metadata={
+        "doc": "Step method: with horizon > 1, evaluate the fields at the predicted positions of later periods."})
+    backend: str = field(default="osqp", metadata={
+        "choices": ("osqp", "cvxpy"), "doc": "Step method: step program back end."})
+    solver: str | None = field(default=None, metadata={
+        "doc": "cvxpy solver name for the cvxpy back end."})
+    separation_slots: int | None = field(default=None, metadata={
+        "doc": "Step method: room for pair constraints per period (default all pairs up to 4 n)."})
+    timeshare_rounds: int = field(default=4, metadata={
+        "doc": "Timeshare mode: play each period's primitive mix in this many shorter rounds."})
+    arrival_margin: float = field(default=0.5, metadata={
+        "doc": "Open loop: keep steering until every body is within this fraction of its tolerance."})
+    settle_steps: int = field(default=30, metadata={
+        "doc": "Most extra periods spent on that settling."})
 
     def __post_init__(self):
         def positive(key, allow_none=True):

@@ -13,6 +13,7 @@ converted by :func:`fieldplan.units.to_si`.
 ================================  ====================================================================
 :mod:`~fieldplan.scenario.yamldoc`   YAML with line numbers, read safely and within resource limits
 :mod:`~fieldplan.scenario.schema`    :data:`SCHEMA`: every section and key (validation, "did you mean", README)
+:mod:`~fieldplan.scenario.fields`    :class:`Key`, and the keys of a dataclass from its fields' metadata
 :mod:`~fieldplan.scenario.model`     :class:`Scenario`, :class:`SimulationSettings`, :class:`OutputSettings`
 :mod:`~fieldplan.scenario.readers`   the validation context and the typed value readers
 :mod:`~fieldplan.scenario.params`    actuator parameters from constructor signatures and numpydoc units
@@ -26,14 +27,15 @@ from .dump import dump_scenario, scenario_to_dict
 from .load import load_scenario, parse_scenario
 from .model import OutputSettings, Scenario, SimulationSettings
 from .params import actuator_params
-from .schema import PLANNER_UNITS, PLOT_NAMES, SCHEMA, VARIANT_SECTIONS, Key, planner_fields, schema_reference
+from .fields import field_keys
+from .schema import PLOT_NAMES, SCHEMA, VARIANT_SECTIONS, Key, schema_reference
 from .yamldoc import (MAX_ALIAS_NODES, MAX_BODIES, MAX_DEPTH, MAX_DPI, MAX_FILE_CHARS, MAX_NODES, MAX_OBSTACLE_VERTICES,
                       MAX_OBSTACLES, MAX_TRIALS, YamlDoc, key_string, read_yaml)
 
 __all__ = [
     "Scenario", "SimulationSettings", "OutputSettings", "SCHEMA", "Key", "VARIANT_SECTIONS", "PLOT_NAMES",
     "load_scenario", "parse_scenario", "read_yaml", "YamlDoc", "key_string", "dump_scenario", "scenario_to_dict",
-    "schema_reference", "actuator_params", "planner_fields", "PLANNER_UNITS",
+    "schema_reference", "actuator_params", "field_keys",
     "MAX_FILE_CHARS", "MAX_DEPTH", "MAX_NODES", "MAX_ALIAS_NODES", "MAX_BODIES", "MAX_OBSTACLES",
     "MAX_OBSTACLE_VERTICES", "MAX_DPI", "MAX_TRIALS",
 ]

@@ -11,7 +11,7 @@ import yaml
 from ..errors import FieldplanError
 from ..fileio import plain
 from .params import actuator_params, registry_name
-from .schema import MISSING
+from .schema import MISSING, SCHEMA
 
 __all__ = ['scenario_to_dict', 'dump_scenario']
 
@@ -84,13 +84,13 @@ def scenario_to_dict(sc):
             kinds.append([b, 1])
     bodies = []
     for b, count in kinds:
-        d = {"kind": b.name, "count": count, "radius": b.radius, "density": b.density, "height": b.height}
-        for k in ("moment", "susceptibility", "saturation_magnetization", "permittivity", "conductivity",
-                  "surface_conductance", "drift_mobility"):
-            if getattr(b, k) is not None:
-                d[k] = plain(getattr(b, k))
-        if b.shell is not None:
-            d["shell"] = dataclasses.asdict(b.shell)
+        d = {"kind": b.name, "count": count}
+        for k in SCHEMA["bodies[]"]:
+            # gap is written as the height it gives (a Body always has one); kind is written above
+            if k.field in (None, "name", "gap") or getattr(b, k.field) is None:
+                continue
+            v = getattr(b, k.field)
+            d[k.name] = dataclasses.asdict(v) if k.kind == "section" else plain(v)
         bodies.append(d)
     out = {
         "name": sc.name,

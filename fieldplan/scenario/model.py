@@ -8,7 +8,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .schema import PLOT_NAMES, planner_fields
+from ..planning.settings import PlanSettings
+from .schema import PLOT_NAMES
 
 __all__ = ['SimulationSettings', 'OutputSettings', 'Scenario']
 
@@ -123,14 +124,8 @@ class Scenario:
         return self.truth if self.truth is not None else self.actuator
 
     def plan_settings(self):
-        """A :class:`fieldplan.planning.plan.PlanSettings` from the ``planner`` section and ``goals.unlabelled``."""
-        from ..planning.plan import PlanSettings  # noqa: PLC0415
-
-        kw = dict(self.planner)
-        names, _ = planner_fields()
-        if "assign_goals" in names:
-            kw["assign_goals"] = bool(self.assign_goals)
-        return PlanSettings(**kw)
+        """A :class:`fieldplan.planning.settings.PlanSettings` from the ``planner`` section and ``goals.unlabelled``."""
+        return PlanSettings(**{**self.planner, "assign_goals": bool(self.assign_goals)})
 
     def replace(self, **changes):
         """A shallow copy with some attributes changed."""

@@ -6,16 +6,17 @@ from __future__ import annotations
 import difflib
 import functools
 import math
+import re
 
 import numpy as np
 
-from ..errors import ScenarioError, UnitError
+from ..errors import FieldplanError, ScenarioError, UnitError
 from ..units import to_si
 from .schema import BAD, SCHEMA
 from .yamldoc import key_string
 
 __all__ = ['Context', 'type_name', 'check_keys', 'read_quantity', 'read_number', 'read_int', 'read_bool', 'read_str',
-           'read_choice', 'read_point', 'read_points', 'read_keys']
+           'read_choice', 'read_point', 'read_points', 'read_key', 'read_keys', 'blame', 'build']
 
 # ----------------------------------------------------------------------------------------------
 # Validation context
@@ -170,6 +171,33 @@ def read_points(ctx, path, value, unit="m", minimum=1):
     return np.array(pts)
 
 
+def read_key(ctx, path, value, key, unit=None):
+    """One value of a typed :class:`~fieldplan.scenario.fields.Key` (``unit`` overrides ``key.unit``).
+
+    Checks the type (a quantity of the right dimension, a whole number, one of the choices, ...);
+    the range of a value is the business of the object it builds.
+    """
+    unit = key.unit if unit is None else unit
+    if key.kind == "quantity":
+        return read_quantity(ctx, path, value, unit)
+    if key.kind == "number":
+        return read_number(ctx, path, value)
+    if key.kind == "int":
+        return read_int(ctx, path, value)
+    if key.kind == "bool":
+        return read_bool(ctx, path, value)
+    if key.kind == "str":
+        return read_str(ctx, path, value)
+    if key.kind == "choice":
+        return read_choice(ctx, path, value, key.choices)
+    if key.kind == "vector3":
+        if not isinstance(value, list) or len(value) != 3:
+            return ctx.err(path, f"expected three numbers [x, y, z] in {unit}, found {type_name(value)}.")
+        comps = [read_quantity(ctx, path + (i,), c, unit) for i, c in enumerate(value)]
+        return BAD if any(c is BAD for c in comps) else tuple(comps)
+    return value
+
+
 def read_keys(ctx, path, mapping, schema_name):
     """Read the typed keys of a flat section with defaults; returns a dict (BAD for failed keys)."""
     out = {}
@@ -180,28 +208,49 @@ def read_keys(ctx, path, mapping, schema_name):
             out[k.name] = k.default
             continue
         v = mapping[k.name]
-        p = path + (k.name,)
         if v is None and not k.required:
             out[k.name] = k.default
             continue
-        if k.kind == "quantity":
-            out[k.name] = read_quantity(ctx, p, v, k.unit)
-        elif k.kind == "number":
-            out[k.name] = read_number(ctx, p, v)
-        elif k.kind == "int":
-            out[k.name] = read_int(ctx, p, v)
-        elif k.kind == "bool":
-            out[k.name] = read_bool(ctx, p, v)
-        elif k.kind == "str":
-            out[k.name] = read_str(ctx, p, v)
-        elif k.kind == "choice":
-            out[k.name] = read_choice(ctx, p, v, k.choices)
-        elif k.kind == "vector3":
-            if not isinstance(v, list) or len(v) != 3:
-                out[k.name] = ctx.err(p, f"expected three numbers [x, y, z] in {k.unit}, found {type_name(v)}.")
-            else:
-                comps = [read_quantity(ctx, p + (i,), c, k.unit) for i, c in enumerate(v)]
-                out[k.name] = BAD if any(c is BAD for c in comps) else tuple(comps)
-        else:
-            out[k.name] = v
+        out[k.name] = read_key(ctx, path + (k.name,), v, k)
     return out
+
+
+def blame(path, message, given):
+    """The key path a dataclass's error message is about: the given key it names first, else ``path``.
+
+    Parameters
+    ----------
+    path : tuple
+        Key path of the section (used when the message names none of the keys).
+    message : str
+        The message of the error the dataclass raised (``"Body 'bead': radius must be ..."``).
+    given : dict of str to tuple
+        Field name -> key path of each value taken from the file.
+
+    Examples
+    --------
+    >>> blame(("limits",), "ChannelLimit lower 1 exceeds upper 0.5.", {"upper": ("u",), "lower": ("l",)})
+    ('l',)
+    """
+    # Quoted text is a value or a label (a body kind may be called 'radius'), not the key at fault.
+    text = re.sub(r"'[^']*'", "''", message)
+    hits = [(m.start(), name) for name in given
+            for m in [re.search(rf"(?<![\w.]){re.escape(name)}(?![\w])", text)] if m]
+    return given[min(hits)[1]] if hits else path
+
+
+def build(ctx, path, cls, kwargs, given, written=None):
+    """``cls(**kwargs)``; an error from its own checks is recorded at the key it names (BAD returned).
+
+    The dataclasses check their values in ``__post_init__``; this turns such a check into a
+    scenario problem with file, line and key (see :func:`blame`). ``written`` (field name -> the
+    value as the file gives it) adds the text the user wrote, e.g. ``'-5 um'`` beside ``-5e-06``.
+    """
+    try:
+        return cls(**kwargs)
+    except FieldplanError as exc:
+        where = blame(path, str(exc), given)
+        field = next((f for f, p in given.items() if p == where), None)
+        raw = (written or {}).get(field)
+        note = f" (the file gives {raw!r})" if isinstance(raw, str) else ""
+        return ctx.err(where, f"{str(exc).rstrip('.')}{note}.")

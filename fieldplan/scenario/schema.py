@@ -1,16 +1,22 @@
 """The scenario schema: the one description of every section and key (validation, "did you mean", the README reference).
+
+The sections that set a dataclass - ``bodies[]`` (:class:`~fieldplan.world.body.Body`), ``bodies[].shell``,
+``limits`` (:class:`~fieldplan.contract.schedule.HardwareLimits`), ``limits.channels.<name>``
+(:class:`~fieldplan.contract.schedule.ChannelLimit`) and ``planner``
+(:class:`~fieldplan.planning.settings.PlanSettings`) - take their keys from the fields' metadata
+(:func:`~fieldplan.scenario.fields.field_keys`): a new field is written once, in its dataclass.
 """
 
 from __future__ import annotations
 
-import dataclasses
-import inspect
-from dataclasses import dataclass
-
+from ..contract.schedule import ChannelLimit, HardwareLimits
+from ..planning.settings import PlanSettings
 from ..plots.catalog import RUN_FIGURES
+from ..world.body import Body, Shell
+from .fields import Key, field_keys
 
 __all__ = ['MISSING', 'BAD', 'NOT_IMPORTED', 'Key', 'SHAPE_DOC', 'SCHEMA', 'VARIANT_SECTIONS', 'PLOT_NAMES',
-           'PLANNER_UNITS', 'PLANNER_CHOICES', 'PLANNER_OPTIONAL_INTS', 'planner_fields', 'schema_reference']
+           'schema_reference']
 
 MISSING = object()
 
@@ -42,25 +48,15 @@ NOT_IMPORTED = _NotImported()
 # Schema: the one description of every key (validation, "did you mean" and the README reference)
 # ----------------------------------------------------------------------------------------------
 
-@dataclass(frozen=True)
-class Key:
-    """One key of a section: its type, SI unit, default and meaning."""
-
-    name: str
-    kind: str            # quantity | number | int | bool | str | choice | point | shape | list | section | map | any
-    unit: str | None = None
-    default: object = None
-    doc: str = ""
-    required: bool = False
-    choices: tuple = ()
-
-
 def _k(name, kind, unit=None, default=None, doc="", required=False, choices=()):
     return Key(name, kind, unit, default, doc, required, tuple(choices))
 
 
 SHAPE_DOC = ("one of `rectangle: [xmin, ymin, xmax, ymax]`, `rectangle: {center: [x, y], size: [w, h]}`, "
              "`circle: {center: [x, y], radius: r}` or `polygon: [[x, y], ...]` (lengths in m or with units)")
+
+_BODY = field_keys(Body, rename={"name": "kind"}, skip=("extra",))
+_LIMITS = field_keys(HardwareLimits)
 
 #: Every section and key of a scenario file, in file order.
 SCHEMA = {
@@ -101,30 +97,9 @@ SCHEMA = {
         _k("relative_permittivity", "number", None, None, "Overrides the preset's relative permittivity."),
         _k("submerged", "bool", None, None, "True for a liquid (plate drift reverses sign); preset default."),
     ],
-    "bodies[]": [
-        _k("kind", "str", required=True, doc="Name of this kind of body (used in outputs)."),
-        _k("count", "int", None, 1, "How many bodies of this kind (>= 1)."),
-        _k("radius", "quantity", "m", None, "Radius.", required=True),
-        _k("density", "quantity", "kg/m^3", None, "Density.", required=True),
-        _k("height", "quantity", "m", None, "Centre height above the floor (default radius + gap)."),
-        _k("gap", "quantity", "m", None, "Gap between body and floor, if height is not given (default 100 nm)."),
-        _k("moment", "vector3", "A*m^2", None, "Fixed magnetic moment [mx, my, mz]."),
-        _k("susceptibility", "number", None, None, "Intrinsic volume susceptibility of a soft bead."),
-        _k("saturation_magnetization", "quantity", "A/m", None, "Saturation magnetisation."),
-        _k("permittivity", "number", None, None, "Relative permittivity of a homogeneous particle."),
-        _k("conductivity", "quantity", "S/m", None, "Bulk conductivity."),
-        _k("surface_conductance", "quantity", "S", None, "Surface conductance."),
-        _k("shell", "section", None, None, "Single-shell cell model (see `bodies[].shell`)."),
-        _k("drift_mobility", "number", None, None, "Plate-drift mobility (calibration parameter of the plate "
-                                                   "actuator; units in actuators.acoustic)."),
-    ],
-    "bodies[].shell": [
-        _k("thickness", "quantity", "m", None, "Membrane thickness.", required=True),
-        _k("membrane_permittivity", "number", None, None, "Relative permittivity.", required=True),
-        _k("membrane_conductivity", "quantity", "S/m", None, "Membrane conductivity.", required=True),
-        _k("interior_permittivity", "number", None, None, "Relative permittivity.", required=True),
-        _k("interior_conductivity", "quantity", "S/m", None, "Interior conductivity.", required=True),
-    ],
+    # Body fields; `kind` is Body.name. Body.extra is not read from files.
+    "bodies[]": _BODY[:1] + [_k("count", "int", None, 1, "How many bodies of this kind (>= 1).")] + _BODY[1:],
+    "bodies[].shell": field_keys(Shell),
     "starts": [
         _k("positions", "list", "m", None, "Explicit `[[x, y], ...]`, one per body in body order."),
         _k("random", "section", None, None, "Random placement (see `starts.random`)."),
@@ -146,30 +121,16 @@ SCHEMA = {
         _k("*", "any", doc="Every other key is a parameter of the actuator's constructor (or of its "
                            "`from_config`), numbers in SI or strings with units."),
     ],
-    "limits": [
-        _k("time_step", "quantity", "s", None, "Hardware time step: segments are quantised to it."),
-        _k("min_dwell", "quantity", "s", None, "Shortest segment holding a non-idle value, every channel."),
-        _k("all_channels", "section", None, None, "Limits applied to every channel (keys as "
-                                                   "`limits.channels.<name>`)."),
-        _k("channels", "map", None, None, "Per channel name: `{lower, upper, slew_rate, min_dwell, rms, "
-                                          "rms_window}` in the channel's unit (slew in unit/s)."),
-    ],
-    "limits.channels.<name>": [
-        _k("lower", "quantity", "<unit>", None, "Lowest value."),
-        _k("upper", "quantity", "<unit>", None, "Highest value."),
-        _k("slew_rate", "quantity", "<unit>/s", None, "Largest change per second."),
-        _k("min_dwell", "quantity", "s", None, "Shortest non-idle segment."),
-        _k("rms", "quantity", "<unit>", None, "Largest RMS over any `rms_window`."),
-        _k("rms_window", "quantity", "s", None, "RMS window (default: the whole schedule)."),
-    ],
-    "planner": [
-        _k("mode", "choice", None, "open_loop", "open_loop: plan once, play the schedule in every trial; "
-                                                "closed_loop: re-plan from observed positions each period.",
-           choices=("open_loop", "closed_loop")),
-        _k("*", "any", doc="Every other key is a field of `fieldplan.planning.plan.PlanSettings` (period, horizon, "
-                           "tolerance, time_limit, clearance, route_resolution, field_aware_routes, "
-                           "max_steps, ...)."),
-    ],
+    # HardwareLimits fields, with `all_channels` (the same limits for every channel) before `channels`.
+    "limits": ([k for k in _LIMITS if k.name != "channels"]
+               + [_k("all_channels", "section", None, None, "Limits applied to every channel (keys as "
+                                                            "`limits.channels.<name>`).")]
+               + [k for k in _LIMITS if k.name == "channels"]),
+    "limits.channels.<name>": field_keys(ChannelLimit),
+    # PlanSettings fields; PlanSettings.assign_goals is set by `goals.unlabelled`.
+    "planner": [_k("mode", "choice", None, "open_loop", "open_loop: plan once, play the schedule in every trial; "
+                                                        "closed_loop: re-plan from observed positions each period.",
+                   choices=("open_loop", "closed_loop"))] + field_keys(PlanSettings, skip=("assign_goals",)),
     "simulation": [
         _k("trials", "int", None, 1, "Simulated executions (0: plan and export only)."),
         _k("seed", "int", None, 0, "Seed of trial k is seed + k (planner randomness uses seed)."),
@@ -203,40 +164,6 @@ SCHEMA = {
 VARIANT_SECTIONS = ("workspace", "medium", "bodies", "starts", "goals", "actuator", "truth", "limits", "planner")
 PLOT_NAMES = tuple(RUN_FIGURES)
 
-#: Units of the PlanSettings fields (the rest are plain numbers, integers or booleans).
-PLANNER_UNITS = {"period": "s", "tolerance": "m", "time_limit": "s", "clearance": "m",
-                 "route_resolution": "m", "table_resolution": "m", "max_trust": "m", "max_step": "m", "trust_region": "m", "goal_hold": "s",
-                 "step_time_limit": "s", "separation": "m", "duration": "s", "max_time": "s"}
-
-# Planner settings with a fixed set of values, and whole numbers that may be left to the planner.
-PLANNER_CHOICES = {"method": ("horizon", "step"), "balance": ("time", "squared"), "backend": ("osqp", "cvxpy")}
-PLANNER_OPTIONAL_INTS = ("horizon",)
-
-# Fields of PlanSettings from the API note, used until fieldplan.plan exists.
-_PLANNER_FALLBACK = {"period": None, "horizon": 1, "tolerance": None, "time_limit": None, "clearance": None,
-                     "route_resolution": None, "field_aware_routes": False, "max_steps": None}
-
-
-def planner_fields():
-    """PlanSettings field names and defaults (from fieldplan.plan if it imports)."""
-    try:
-        from ..planning.plan import PlanSettings  # noqa: PLC0415 - the planner is optional at load time
-    except Exception:  # noqa: BLE001 - planner not there (yet) or broken: validate against the API note
-        return dict(_PLANNER_FALLBACK), None
-    if dataclasses.is_dataclass(PlanSettings):
-        out = {}
-        for f in dataclasses.fields(PlanSettings):
-            if f.default is not dataclasses.MISSING:
-                out[f.name] = f.default
-            elif f.default_factory is not dataclasses.MISSING:  # type: ignore[misc]
-                out[f.name] = f.default_factory()  # type: ignore[misc]
-            else:
-                out[f.name] = None
-        return out, PlanSettings
-    sig = inspect.signature(PlanSettings)
-    return ({n: (p.default if p.default is not inspect.Parameter.empty else None)
-             for n, p in sig.parameters.items() if p.kind is not p.VAR_KEYWORD}, PlanSettings)
-
 
 def schema_reference():
     """The key-by-key reference of the scenario format as Markdown (generated from :data:`SCHEMA`)."""
@@ -249,6 +176,7 @@ def schema_reference():
         for k in keys:
             default = "**required**" if k.required else ("" if k.default is None else f"`{k.default}`")
             kind = k.kind if not k.choices else " \\| ".join(k.choices)
-            lines.append(f"| `{k.name}` | {kind} | {k.unit or ''} | {default} | {k.doc} |")
+            doc = k.doc.replace("|", "\\|")          # a pipe in a meaning (|f| / |grad f|) would end the cell
+            lines.append(f"| `{k.name}` | {kind} | {k.unit or ''} | {default} | {doc} |")
         lines.append("")
     return "\n".join(lines)

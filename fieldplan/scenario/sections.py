@@ -14,37 +14,27 @@ from ..contract.actuator import Actuator
 from ..contract.registry import available_actuators, is_registered_module, load_actuator_class
 from ..contract.schedule import ChannelLimit, HardwareLimits
 from ..errors import FieldplanError
+from ..planning.settings import PlanSettings
 from ..world.body import Body, Shell
 from ..world.medium import air, water
 from ..world.workspace import CIRCLE_RESOLUTION, Workspace, polygon
 from . import yamldoc
 from .model import OutputSettings, SimulationSettings
+from .fields import CHANNEL_UNIT, channel_unit
 from .params import is_path_param, param_info, read_param_value, read_si_params, resolve_path
 from .readers import (
     Context,
+    build,
     check_keys,
-    read_bool,
     read_choice,
-    read_int,
+    read_key,
     read_keys,
-    read_number,
     read_point,
     read_points,
     read_quantity,
-    read_str,
     type_name,
 )
-from .schema import (
-    BAD,
-    MISSING,
-    NOT_IMPORTED,
-    PLANNER_CHOICES,
-    PLANNER_OPTIONAL_INTS,
-    PLANNER_UNITS,
-    PLOT_NAMES,
-    SCHEMA,
-    planner_fields,
-)
+from .schema import BAD, MISSING, NOT_IMPORTED, PLOT_NAMES, SCHEMA
 
 __all__ = ['read_workspace', 'read_medium', 'read_bodies', 'declared_count', 'check_position_count',
            'read_placements', 'read_actuator', 'read_limits', 'read_planner', 'read_simulation', 'read_outputs']
@@ -234,40 +224,30 @@ def read_bodies(ctx, kinds):
         elif isinstance(v["count"], int) and v["count"] > yamldoc.MAX_BODIES:
             v["count"] = ctx.err(p + ("count",), f"at most {yamldoc.MAX_BODIES} bodies fit in one scenario "
                                                  f"(fieldplan.scenario.MAX_BODIES), found {spec['count']!r}.")
-        for key in ("radius", "density", "height", "gap", "saturation_magnetization"):
-            if isinstance(v.get(key), float) and not v[key] > 0:
-                v[key] = ctx.err(p + (key,), f"must be > 0, found {spec[key]!r}.")
         shell = None
         if spec.get("shell") is not None:
             sp = p + ("shell",)
             if check_keys(ctx, sp, spec["shell"], "bodies[].shell"):
                 sv = read_keys(ctx, sp, spec["shell"], "bodies[].shell")
-                if any(x is BAD or x is None for x in sv.values()):
-                    shell = BAD
-                else:
-                    try:
-                        shell = Shell(**sv)
-                    except FieldplanError as exc:
-                        shell = ctx.err(sp, str(exc))
+                shell = BAD if any(x is BAD or x is None for x in sv.values()) else \
+                    build(ctx, sp, Shell, sv, {k: sp + (k,) for k in sv}, spec["shell"])
             else:
                 shell = BAD
         if any(x is BAD for x in v.values()) or shell is BAD:
             ok = False
             continue
-        kw = {k: v[k] for k in ("radius", "density", "height", "gap", "moment", "susceptibility",
-                                "saturation_magnetization", "permittivity", "conductivity",
-                                "surface_conductance", "drift_mobility") if v[k] is not None}
+        # Every key that is a Body field (`kind` is Body.name); Body checks the values.
+        keys = [k for k in SCHEMA["bodies[]"] if k.field is not None and v.get(k.name) is not None]
+        kw = {k.field: v[k.name] for k in keys}
         if v["kind"] in names:
             ctx.err(p + ("kind",), f"kind {v['kind']!r} is already used by bodies[{names[v['kind']]}]; "
                                    "give each kind once with a count.")
             ok = False
             continue
         names[v["kind"]] = i
-        try:
-            body = Body(v["kind"], shell=shell, **kw)
-        except FieldplanError as exc:
-            key = next((k for k in kw if k in str(exc)), "kind")
-            ctx.err(p + (key,), str(exc))
+        body = build(ctx, p, Body, {**kw, "shell": shell}, {k.field: p + (k.name,) for k in keys},
+                     {k.field: spec[k.name] for k in keys if k.name in spec})
+        if body is BAD:
             ok = False
             continue
         out.append((body, int(v["count"]), i))
@@ -456,7 +436,19 @@ def read_actuator(ctx, path, spec, base=None):
 
 # -- limits --------------------------------------------------------------------------------------
 
-_LIMIT_KEYS = ("lower", "upper", "slew_rate", "min_dwell", "rms", "rms_window")
+#: Per ChannelLimit field: (is a scenario's value ``new`` looser than the declared ``old``, how to say so).
+#: A scenario may tighten what the actuator declares (:meth:`Actuator.hardware_limits`), never loosen it.
+LOOSER_THAN_DECLARED = {
+    "lower": (lambda new, old: new < old, "looser than"),
+    "upper": (lambda new, old: new > old, "looser than"),
+    "slew_rate": (lambda new, old: new > old, "looser than"),
+    "min_dwell": (lambda new, old: new < old, "looser than"),
+    "rms": (lambda new, old: new > old, "looser than"),
+    "rms_window": (lambda new, old: new > old, "looser than"),
+    # A coarser step is played exactly only if it is a whole number of the hardware's steps.
+    "resolution": (lambda new, old: abs(new / old - round(new / old)) > 1e-9 * new / old or new < old,
+                   "not a whole multiple of"),
+}
 
 
 def read_limits(ctx, spec, actuator):
@@ -469,37 +461,41 @@ def read_limits(ctx, spec, actuator):
     if not check_keys(ctx, path, spec, "limits"):
         return BAD
     top = read_keys(ctx, path, spec, "limits")
-    for k in ("time_step", "min_dwell"):
-        if isinstance(top[k], float) and not top[k] > 0:
-            top[k] = ctx.err(path + (k,), f"must be > 0 s, found {spec[k]!r}.")
+    top_keys = [k for k in SCHEMA["limits"] if k.field is not None and k.name in top]
+    if not any(x is BAD for x in top.values()):
+        # HardwareLimits checks its own values; checked now, a problem is listed with the channels' ones.
+        given = {k.field: top[k.name] for k in top_keys if top[k.name] is not None}
+        if build(ctx, path, HardwareLimits, given, {k.field: path + (k.name,) for k in top_keys},
+                 {k.field: spec.get(k.name) for k in top_keys}) is BAD:
+            top = {k: BAD for k in top}
+    keys = {k.name: k for k in SCHEMA["limits.channels.<name>"]}
 
     def one(p, d, unit):
         if not isinstance(d, dict):
-            ctx.err(p, f"expected a mapping of {list(_LIMIT_KEYS)}, found {type_name(d)}.")
+            ctx.err(p, f"expected a mapping of {list(keys)}, found {type_name(d)}.")
             return BAD
         out = {}
         for k, v in d.items():
-            if k not in _LIMIT_KEYS:
-                close = difflib.get_close_matches(k, _LIMIT_KEYS, n=1, cutoff=0.6)
-                hint = f" Did you mean {close[0]!r}?" if close else f" Allowed: {', '.join(_LIMIT_KEYS)}."
+            if k not in keys:
+                close = difflib.get_close_matches(k, list(keys), n=1, cutoff=0.6)
+                hint = f" Did you mean {close[0]!r}?" if close else f" Allowed: {', '.join(keys)}."
                 out[k] = ctx.err(p + (k,), f"unknown limit {k!r}.{hint}")
                 continue
-            u = {"slew_rate": f"({unit})/s", "min_dwell": "s", "rms_window": "s"}.get(k, unit)
-            if k in ("lower", "upper"):
-                out[k] = read_quantity(ctx, p + (k,), v, u)
-            else:
-                out[k] = read_quantity(ctx, p + (k,), v, u, positive=True)
+            out[k] = read_key(ctx, p + (k,), v, keys[k], channel_unit(keys[k].unit, unit))
         if any(x is BAD for x in out.values()):
             return BAD
-        if out.get("lower") is not None and out.get("upper") is not None and out["lower"] > out["upper"]:
-            ctx.err(p + ("lower",), f"lower {d['lower']!r} exceeds upper {d['upper']!r}.")
+        # ChannelLimit checks the values (> 0, lower <= upper) at the key its message names.
+        given = {keys[k].field: x for k, x in out.items() if x is not None}
+        if build(ctx, p, ChannelLimit, given, {keys[k].field: p + (k,) for k in out},
+                 {keys[k].field: d[k] for k in out}) is BAD:
             return BAD
         return out
 
     common = {}
     if spec.get("all_channels") is not None:
         units = {c.unit for c in actuator.channels}
-        if len(units) > 1 and any(k in spec["all_channels"] for k in ("lower", "upper", "slew_rate", "rms")):
+        in_channel_unit = [n for n, k in keys.items() if CHANNEL_UNIT in (k.unit or "")]
+        if len(units) > 1 and any(k in spec["all_channels"] for k in in_channel_unit):
             ctx.err(path + ("all_channels",), f"channels have different units {sorted(units)}; give value "
                                               "limits per channel under 'channels'.")
             return BAD
@@ -526,8 +522,8 @@ def read_limits(ctx, spec, actuator):
         base = declared.get(name)
         d = {"lower": c.lower if base.lower is None else max(base.lower, c.lower),
              "upper": c.upper if base.upper is None else min(base.upper, c.upper)}
-        d.update({k: getattr(base, k) for k in ("slew_rate", "min_dwell", "rms", "rms_window", "resolution")
-                  if getattr(base, k) is not None})
+        d.update({f.name: getattr(base, f.name) for f in dataclasses.fields(ChannelLimit)
+                  if f.name not in d and getattr(base, f.name) is not None})
         given = {k: v for k, v in common.items() if v is not None}
         given.update({k: v for k, v in per.get(name, {}).items() if v is not None})
         where = {k: path + (("channels", name) if k in per.get(name, {}) else ("all_channels",)) + (k,) for k in given}
@@ -547,33 +543,31 @@ def read_limits(ctx, spec, actuator):
             ctx.err(p, f"limits [{d['lower']:g}, {d['upper']:g}] {c.unit} do not overlap the bounds of channel "
                        f"{name!r}, [{c.lower:g}, {c.upper:g}] {c.unit}.")
             return BAD
-        try:
-            limits[name] = ChannelLimit(**d)
-        except FieldplanError as exc:
-            ctx.err(path + ("channels", name), str(exc))
+        limits[name] = build(ctx, path + ("channels", name), ChannelLimit, d, where)
+        if limits[name] is BAD:
             return BAD
-    return HardwareLimits(limits, time_step=top["time_step"] if top["time_step"] is not None else declared.time_step,
-                          min_dwell=top["min_dwell"] if top["min_dwell"] is not None else declared.min_dwell)
+    return HardwareLimits(limits, **{k.field: top[k.name] if top[k.name] is not None else getattr(declared, k.field)
+                                     for k in top_keys})
 
 
 def _tightens(ctx, channel, unit, declared, given, where, actuator_name):
     """Whether every limit in ``given`` is at least as strict as the actuator's declared one (errors recorded).
 
     A scenario may tighten what the hardware declares (:meth:`Actuator.hardware_limits`), never
-    loosen it: a larger upper bound, slew rate or RMS current, a smaller lower bound or minimum
-    dwell, or a longer RMS window than declared is refused, naming the key and the declared value.
+    loosen it (:data:`LOOSER_THAN_DECLARED`): a larger upper bound, slew rate or RMS current, a
+    smaller lower bound or minimum dwell, a longer RMS window, or a resolution that is not a whole
+    multiple of the declared one is refused, naming the key and the declared value.
     """
-    looser = {"upper": lambda new, old: new > old, "slew_rate": lambda new, old: new > old,
-              "rms": lambda new, old: new > old, "lower": lambda new, old: new < old,
-              "min_dwell": lambda new, old: new < old, "rms_window": lambda new, old: new > old}
+    keys = {k.name: k for k in SCHEMA["limits.channels.<name>"]}
     ok = True
     for key, new in given.items():
         old = declared.get(key)
         if key == "rms_window" and declared.get("rms") is None:
             continue        # no declared RMS limit: any window is the scenario's own
-        if old is not None and looser[key](new, old):
-            u = {"slew_rate": f"{unit}/s", "min_dwell": "s", "rms_window": "s"}.get(key, unit)
-            ctx.err(where[key], f"{new:g} {u} for channel {channel!r} is looser than the {old:g} {u} that "
+        looser, phrase = LOOSER_THAN_DECLARED[key]
+        if old is not None and looser(new, old):
+            u = (keys[key].unit or "").replace(CHANNEL_UNIT, unit)
+            ctx.err(where[key], f"{new:g} {u} for channel {channel!r} is {phrase} the {old:g} {u} that "
                                 f"{actuator_name} declares (hardware_limits()); a scenario may tighten a declared "
                                 "limit, not loosen it.")
             ok = False
@@ -581,49 +575,41 @@ def _tightens(ctx, channel, unit, declared, given, where, actuator_name):
 
 
 def read_planner(ctx, spec):
+    """The ``planner`` section: ``({PlanSettings field: value}, mode)``, checked by :class:`PlanSettings`."""
     path = ("planner",)
     if spec is None:
         return {}, "open_loop"
     if not isinstance(spec, dict):
         ctx.err(path, f"expected a mapping of planner settings, found {type_name(spec)}.")
         return BAD, "open_loop"
-    names, _ = planner_fields()
-    allowed = ["mode"] + [n for n in names if n != "assign_goals"]
-    out = {}
+    keys = {k.name: k for k in SCHEMA["planner"]}
+    out, where, written = {}, {}, {}
     mode = "open_loop"
     for k, v in spec.items():
         p = path + (k,)
         if k == "mode":
-            mode = read_choice(ctx, p, v, ("open_loop", "closed_loop"))
+            mode = read_choice(ctx, p, v, keys["mode"].choices)
             continue
         if k == "assign_goals":
             ctx.err(p, "set 'goals.unlabelled: true' instead (goals are then assigned by the planner).")
             continue
-        if k not in allowed:
-            close = difflib.get_close_matches(k, allowed, n=1, cutoff=0.6)
-            hint = f" Did you mean {close[0]!r}?" if close else f" Allowed keys: {', '.join(allowed)}."
+        if k not in keys:
+            close = difflib.get_close_matches(k, list(keys), n=1, cutoff=0.6)
+            hint = f" Did you mean {close[0]!r}?" if close else f" Allowed keys: {', '.join(keys)}."
             ctx.err(p, f"unknown planner setting {k!r}.{hint}")
             continue
-        default = names[k]
+        key = keys[k]
+        where[key.field], written[key.field] = p, v
         if v is None:
-            out[k] = None
-        elif k in PLANNER_UNITS:
-            out[k] = read_quantity(ctx, p, v, PLANNER_UNITS[k], positive=True)
-        elif k in PLANNER_CHOICES:
-            out[k] = read_choice(ctx, p, v, PLANNER_CHOICES[k])
-        elif k in PLANNER_OPTIONAL_INTS:
-            out[k] = read_int(ctx, p, v, minimum=1)
-        elif isinstance(default, bool):
-            out[k] = read_bool(ctx, p, v)
-        elif isinstance(default, int) and not isinstance(default, bool):
-            out[k] = read_int(ctx, p, v, minimum=1)
-        elif isinstance(default, float):
-            out[k] = read_number(ctx, p, v)
-        elif isinstance(default, str):
-            out[k] = read_str(ctx, p, v)
+            # null asks for the default, which only a setting computed when it is None can hold
+            out[key.field] = None if key.default is None else ctx.err(
+                p, f"expected a value, found nothing (null); leave {k!r} out for its default {key.default!r}.")
         else:
-            out[k] = read_si_params(ctx, p, v) if isinstance(v, (dict, list, str)) else v
+            out[key.field] = read_key(ctx, p, v, key)
     if any(v is BAD for v in out.values()) or mode is BAD:
+        return BAD, "open_loop"
+    # PlanSettings checks the values (> 0, whole numbers >= 1, ...); its message names the key.
+    if build(ctx, path, PlanSettings, out, where, written) is BAD:
         return BAD, "open_loop"
     return out, mode
 

@@ -43,11 +43,12 @@ class Shell:
         S/m.
     """
 
-    thickness: float
-    membrane_permittivity: float
-    membrane_conductivity: float
-    interior_permittivity: float
-    interior_conductivity: float
+    # Unit and one-line meaning per field (metadata): what scenario files and their reference read.
+    thickness: float = field(metadata={"unit": "m", "doc": "Membrane thickness."})
+    membrane_permittivity: float = field(metadata={"doc": "Relative permittivity of the membrane."})
+    membrane_conductivity: float = field(metadata={"unit": "S/m", "doc": "Membrane conductivity."})
+    interior_permittivity: float = field(metadata={"doc": "Relative permittivity of the interior."})
+    interior_conductivity: float = field(metadata={"unit": "S/m", "doc": "Interior conductivity."})
 
     def __post_init__(self):
         _positive("Shell", "thickness", self.thickness)
@@ -97,20 +98,32 @@ class Body:
         no part in equality, which ``height`` decides; :attr:`clearance` is always ``height - radius``.
     """
 
-    name: str
-    radius: float
-    density: float
-    height: float | None = None
-    moment: tuple | None = None
-    susceptibility: float | None = None
-    saturation_magnetization: float | None = None
-    permittivity: float | None = None
-    conductivity: float | None = None
-    surface_conductance: float | None = None
-    shell: Shell | None = None
-    drift_mobility: float | None = None
-    extra: tuple = field(default=(), compare=True)
-    gap: float | None = field(default=None, compare=False)
+    # Unit, one-line meaning and kind per field (metadata): what scenario files (`bodies:`), `fieldplan
+    # schema` and the README reference read (fieldplan.scenario.fields); the checks are in __post_init__.
+    name: str = field(metadata={"doc": "Name of this kind of body (used in outputs)."})
+    radius: float = field(metadata={"unit": "m", "doc": "Radius."})
+    density: float = field(metadata={"unit": "kg/m^3", "doc": "Density."})
+    height: float | None = field(default=None, metadata={
+        "unit": "m", "doc": "Centre height above the floor (default radius + gap)."})
+    moment: tuple | None = field(default=None, metadata={
+        "unit": "A*m^2", "kind": "vector3", "doc": "Fixed magnetic moment [mx, my, mz]."})
+    susceptibility: float | None = field(default=None, metadata={
+        "doc": "Intrinsic volume susceptibility of a soft bead."})
+    saturation_magnetization: float | None = field(default=None, metadata={
+        "unit": "A/m", "doc": "Saturation magnetisation (with susceptibility)."})
+    permittivity: float | None = field(default=None, metadata={
+        "doc": "Relative permittivity of a homogeneous particle."})
+    conductivity: float | None = field(default=None, metadata={"unit": "S/m", "doc": "Bulk conductivity."})
+    surface_conductance: float | None = field(default=None, metadata={
+        "unit": "S", "doc": "Surface conductance (adds 2 K_s / r to the bulk conductivity)."})
+    shell: Shell | None = field(default=None, metadata={
+        "kind": "section", "doc": "Single-shell cell model; replaces permittivity and conductivity."})
+    drift_mobility: float | None = field(default=None, metadata={
+        "doc": "Plate-drift mobility (calibration parameter of the plate actuator; units in actuators.acoustic)."})
+    extra: tuple = field(default=(), compare=True, metadata={
+        "doc": "Further hashable properties, part of equality (not read from scenario files)."})
+    gap: float | None = field(default=None, compare=False, metadata={
+        "unit": "m", "doc": "Gap between body and floor, if height is not given (default 100 nm)."})
 
     def __post_init__(self):
         owner = f"Body {self.name!r}"
