@@ -59,8 +59,9 @@ class PlanSettings:
     tolerance : float, optional
         Arrival radius, m (default each body's radius).
     time_limit : float, optional
-        Longest plan, s (default: five times the sum over bodies of route length / available speed,
-        plus 50 periods: enough to move the bodies one after another).
+        Longest plan, s (default, horizon method: ten times the slowest body's time-to-go or four
+        times the sum of them, whichever is longer, plus ``50 + settle_steps`` periods: enough to
+        move the bodies one after another).
     clearance : float, optional
         Extra distance kept from walls by routes and between bodies by the separation constraint, m
         (default half the largest radius).
@@ -76,7 +77,8 @@ class PlanSettings:
     max_trust : float, optional
         Largest trust radius, m (default 1/20 of the workspace's larger side).
     route_resolution : float, optional
-        Route grid cell, m (default :func:`fieldplan.routes.default_resolution`).
+        Route and cost-to-go grid cell, m (default :func:`fieldplan.routes.default_resolution`:
+        1/64 of the workspace's larger side).
     field_aware_routes : bool
         Step method: Route edge cost = time at the actuator's available speed instead of length.
     assign_goals : bool
