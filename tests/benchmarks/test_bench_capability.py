@@ -31,15 +31,14 @@ import numpy as np
 import pytest
 import shapely
 
-from actuators.acoustic import Plate
-from actuators.dielectric import ElectrodeArray
-from actuators.electrostatics import pad_array
-from actuators.magnetic import Coil, CoilArray
+from fieldplan.actuators.acoustic import Plate
+from fieldplan.actuators.dielectric import ElectrodeArray
+from fieldplan.actuators.electrostatics import pad_array
+from fieldplan.actuators.magnetic import Coil, CoilArray
 from fieldplan import Body, ChannelLimit, HardwareLimits, Shell, Workspace, air, circle, water
-from fieldplan.live import closed_loop
-from fieldplan.plan import PlanSettings
-from fieldplan.planning import Controller
-from fieldplan.steer import _wilson, basis_function, count_curve, counting_limit, steerable
+from fieldplan.planning.live import closed_loop
+from fieldplan.planning import Controller, PlanSettings
+from fieldplan.analysis import basis_function, count_curve, counting_limit, steerable, wilson_interval
 
 from peers import PEERS, run_peer
 
@@ -213,7 +212,7 @@ def print_table(case, mode, size, bound, rows):
         for label, runs in row["runs"].items():
             k = sum(r[0] for r in runs)
             n = len(runs)
-            lo, hi = _wilson(k, n)
+            lo, hi = wilson_interval(k, n)
             ttg = [r[1] for r in runs if r[0]]
             why = collections.Counter(r[3] for r in runs if r[3])
             broke = sum(r[4] for r in runs)
@@ -246,5 +245,5 @@ def test_bench_capability(case_fn):
 
 def test_wilson_interval_is_the_textbook_one():
     # Wilson (1927) score interval; 3 of 4 at 95 %: [0.301, 0.954] (recomputed from the closed form).
-    lo, hi = _wilson(3, 4)
+    lo, hi = wilson_interval(3, 4)
     assert abs(lo - 0.3006) < 1e-3 and abs(hi - 0.9544) < 1e-3
