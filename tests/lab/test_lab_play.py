@@ -135,7 +135,9 @@ def test_a_signal_to_a_running_play_leaves_the_instrument_idle(rig, sig):
     sched = rig["dir"] / "schedule.json"
     schedule(n=40, duration=0.1).write_json(sched, limits=LIMITS)          # 4 s
     log = rig["dir"] / "sent.csv"
-    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    # Unbuffered: the "playing" line must reach us while it plays, not when it exits (a buffered pipe
+    # let the whole play finish before the signal was sent, on a loaded machine).
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""), PYTHONUNBUFFERED="1")
     proc = subprocess.Popen([sys.executable, "-c", "import sys; from fieldplan.cli import main; sys.exit(main())",
                              "play", str(sched), "--driver", rig["url"], "--profile", rig["profile"], "--yes",
                              "--log", str(log)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
