@@ -38,6 +38,7 @@ from scipy.optimize import brentq
 
 from fieldplan.contract.actuator import Actuator, Channel, FieldBasis, Primitive
 from fieldplan.errors import ActuatorError
+from fieldplan.units import to_si
 from fieldplan.world.physics import drag_coefficient
 
 from .electrostatics import (
@@ -329,8 +330,6 @@ def joule_heating_estimate(voltage_rms, conductivity, thermal_conductivity=WATER
 # The actuator
 # ------------------------------------------------------------------------------------------------
 def _si(value, unit, name):
-    from fieldplan.units import to_si
-
     try:
         return to_si(value, unit, name)
     except ValueError as exc:

@@ -62,6 +62,7 @@ from shapely.validation import explain_validity
 
 from fieldplan.errors import ActuatorError
 from fieldplan.fileio import atomic_open
+from fieldplan.units import to_si
 
 __all__ = [
     "ElectrodeLayout",
@@ -403,8 +404,6 @@ def layout_from_spec(spec):
     >>> len(layout_from_spec({"pad_array": {"rows": 2, "cols": 2, "pad": "50 um", "gap": "20 um"}}))
     4
     """
-    from fieldplan.units import to_si
-
     if isinstance(spec, ElectrodeLayout):
         return spec
     if not isinstance(spec, dict) or len(spec) != 1:

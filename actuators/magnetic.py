@@ -46,6 +46,7 @@ from scipy.constants import mu_0
 from scipy.special import ellipe, ellipkm1
 
 from fieldplan.contract.actuator import Actuator, Channel, FieldBasis, Primitive
+from fieldplan.contract.schedule import ChannelLimit, HardwareLimits
 from fieldplan.errors import ActuatorError, LimitError
 from fieldplan.world.physics import drag_coefficient
 
@@ -1422,8 +1423,6 @@ class CoilArray(Actuator):
             Bounds +-``current_limit``; ``rms`` = the coil's ``rms_current`` and ``rms_window`` = its
             ``thermal_time_constant`` where given.
         """
-        from fieldplan.contract.schedule import ChannelLimit
-
         out = {}
         for ch, c in zip(self.channels, self.coils):
             out[ch.name] = ChannelLimit(lower=ch.lower, upper=ch.upper, rms=c.rms_current,
@@ -1436,8 +1435,6 @@ class CoilArray(Actuator):
         ``kwargs`` (``time_step``, ``min_dwell``) are passed to
         :class:`fieldplan.contract.schedule.HardwareLimits`. Scenarios start from these limits.
         """
-        from fieldplan.contract.schedule import HardwareLimits
-
         return HardwareLimits(self.rms_limits(), **kwargs)
 
     def thermal_report(self, schedule):

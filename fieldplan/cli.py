@@ -15,9 +15,15 @@ import sys
 import textwrap
 import time
 
+from . import __version__
+from .contract.registry import available_actuators, load_actuator_class
+from .contract.schedule import Schedule
 from .errors import FieldplanError, LimitError, ScenarioError
 from .fileio import check_output_folder, clean_stale_temps, output_folder
+from .lab.commands import add_commands as _add_lab_commands, cmd_play, cmd_track
 from .units import format_quantity
+from .workflows.design import add_command as _add_design_command, design_command
+from .workflows.export import write_outputs
 
 __all__ = ["main", "build_parser", "EXIT_OK", "EXIT_NOT_REACHED", "EXIT_BAD_INPUT", "EXIT_INTERNAL"]
 
@@ -46,8 +52,6 @@ def build_parser():
                             "field inputs; simulate, export for hardware, compare actuation schemes.",
                 epilog="exit codes: 0 success, 1 some goal not reached, 2 bad input, 3 internal error.\n"
                        "example:\n  fieldplan run scenarios/demo.yaml --out demo-output")
-    from . import __version__  # noqa: PLC0415
-
     p.add_argument("--version", action="version", version=f"fieldplan {__version__}")
     sub = p.add_subparsers(dest="command", metavar="<command>", parser_class=_Parser)
 
@@ -176,11 +180,7 @@ def build_parser():
             fieldplan schema > SCENARIO-REFERENCE.md
             """)
     s.add_argument("--actuators-only", action="store_true", help="only list the registered actuators")
-    from .workflows.design import add_command as _add_design_command  # noqa: PLC0415
-
     _add_design_command(add)
-    from .lab.commands import add_commands as _add_lab_commands  # noqa: PLC0415
-
     _add_lab_commands(add, _nonneg_int)
     return p
 
@@ -241,6 +241,7 @@ def show_progress(args):
 
 def load_for_command(path, args, check_only=False):
     """Load a scenario file for a command, announcing plug-ins it imports; errors become :class:`UserError`."""
+    # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
     from .scenario import load_scenario  # noqa: PLC0415
 
     def announce(module, origin, why):
@@ -289,8 +290,8 @@ def _default_out(sc, suffix):
 
 # ---------------------------------------------------------------------------------------------
 def _cmd_run(args):
+    # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
     from .workflows.compare import run_scenario  # noqa: PLC0415
-    from .workflows.export import write_outputs  # noqa: PLC0415
 
     sc = load_for_command(args.scenario, args)
     _note_variants(args, sc, "run", "plans and simulates")
@@ -334,8 +335,6 @@ def _cmd_run(args):
 
 
 def _read_schedule(path, sc):
-    from .contract.schedule import Schedule  # noqa: PLC0415
-
     if not os.path.exists(path):
         raise UserError(f"{path}: no such schedule file.")
     if not os.path.isfile(path):
@@ -371,6 +370,7 @@ def _parse_seeds(text):
 
 
 def _cmd_compare(args):
+    # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
     from .workflows.compare import compare, make_executor, write_comparison  # noqa: PLC0415
 
     seeds = _parse_seeds(args.seeds)
@@ -406,7 +406,9 @@ def _cmd_compare(args):
 
 # ---------------------------------------------------------------------------------------------
 def _cmd_inspect(args):
+    # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
     from .scenario import MAX_BODIES  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
     from .workflows.inspect import inspect_scenario  # noqa: PLC0415
 
     sc = load_for_command(args.scenario, args)
@@ -442,6 +444,7 @@ def _load_each(paths, args, check_only=False):
 
 # ---------------------------------------------------------------------------------------------
 def _cmd_validate(args):
+    # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
     from .scenario import dump_scenario  # noqa: PLC0415
 
     loaded, problems = _load_each(args.scenarios, args, check_only=True)
@@ -469,6 +472,7 @@ def _cmd_validate(args):
 
 def _cmd_fit(args):
     try:
+        # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
         from .calibration.calibrate import calibrate_command  # noqa: PLC0415
     except ImportError as exc:
         raise UserError(f"calibration is not available ({exc}).") from None
@@ -525,7 +529,7 @@ def _previous_note(path):
 
 
 def _cmd_schema(args):
-    from .contract.registry import available_actuators, load_actuator_class  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: `fieldplan --help` does not load this layer
     from .scenario import actuator_params, schema_reference  # noqa: PLC0415
 
     if not args.actuators_only:
@@ -550,20 +554,14 @@ _COMMANDS = {"run": _cmd_run, "compare": _cmd_compare, "inspect": _cmd_inspect, 
 # the lab commands: `track` and `play` live in fieldplan/lab/commands.py
 # ---------------------------------------------------------------------------------------------
 def _cmd_track(args):
-    from .lab.commands import cmd_track  # noqa: PLC0415
-
     return cmd_track(args)
 
 
 def _cmd_play(args):
-    from .lab.commands import cmd_play  # noqa: PLC0415
-
     return cmd_play(args)
 
 
 def _cmd_design(args):
-    from .workflows.design import design_command  # noqa: PLC0415
-
     return design_command(args)
 
 

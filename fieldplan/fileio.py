@@ -36,7 +36,8 @@ __all__ = ["umask_mode", "atomic_path", "atomic_open", "atomic_write", "save_fig
 
 
 def _version():
-    from . import __version__  # noqa: PLC0415 - the package's __init__ imports modules that import this one
+    # deferred import: import cycle: fieldplan/__init__ -> fieldplan.contract.schedule -> this module, before __version__ is set
+    from . import __version__  # noqa: PLC0415
 
     return __version__
 

@@ -41,6 +41,7 @@ __all__ = ["Steerability", "Obstruction", "steerability", "steerable", "body_spe
 def __getattr__(name):
     # capability_curve imports the planner (cvxpy, OSQP: about a second); the other analyses do not.
     if name == "capability_curve":
+        # deferred import: start-up time of the CLI: inspect and plots use the other analyses, not the planner
         from .capability import capability_curve  # noqa: PLC0415
 
         return capability_curve

@@ -56,6 +56,8 @@ from scipy.spatial import cKDTree
 from ..contract.actuator import Actuator, Channel, Primitive
 from ..errors import ActuatorError, FieldplanError
 from ..fileio import atomic_open, atomic_write, plain
+from ..units import to_si
+from ..world.body import Body
 from .tracking import TrackingData, TrackingDataError, VelocitySamples, read_tracks, velocity_samples
 
 __all__ = [
@@ -444,8 +446,6 @@ def fit_field(samples, *, kernel="thin_plate_spline", epsilon=None, smoothing=No
     if smoothing is not None and not (np.isfinite(smoothing) and smoothing >= 0):
         raise CalibrationError(f"smoothing must be a finite number >= 0, got {smoothing!r}.")
     if bandwidth is not None:
-        from ..units import to_si
-
         bandwidth = to_si(bandwidth, "m", name="bandwidth")
         if not bandwidth > 0:
             raise CalibrationError(f"bandwidth must be > 0 m, got {bandwidth}.")
@@ -967,8 +967,6 @@ class ParameterFit:
 
 
 def _resolve_bodies(bodies, kinds):
-    from ..world.body import Body
-
     if isinstance(bodies, Body):
         return {k: bodies for k in kinds}
     if isinstance(bodies, dict):
@@ -994,8 +992,6 @@ def _resolve_bodies(bodies, kinds):
 
 def _body_param(name, body_of):
     """``"body.radius"`` -> (None, "radius"); ``"body[bead-2um].radius"`` -> ("bead-2um", "radius")."""
-    from ..world.body import Body
-
     m = re.fullmatch(r"body(?:\[([^\]]+)\])?\.(\w+)", name)
     allowed = [f.name for f in dataclasses.fields(Body) if f.name not in ("name", "extra", "shell")]
     if not m or m.group(2) not in allowed:
@@ -1231,8 +1227,10 @@ def __getattr__(name):
     # The report figures live in fieldplan.plots.calibration and the whole job in
     # fieldplan.workflows.fit (both import this module); the earlier names keep working.
     if name in ("plot_vectors", "plot_residuals", "plot_coverage"):
+        # deferred import: import cycle: fieldplan.plots.calibration imports this module (plots is the layer above)
         from ..plots import calibration as module  # noqa: PLC0415
     elif name == "calibrate_command":
+        # deferred import: import cycle: fieldplan.workflows.fit imports this module (workflows is the layer above)
         from ..workflows import fit as module  # noqa: PLC0415
     else:
         raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

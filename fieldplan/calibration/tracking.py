@@ -45,6 +45,7 @@ from scipy.signal import savgol_coeffs, savgol_filter
 from ..errors import FieldplanError, UnitError
 from ..fileio import atomic_open
 from ..units import to_si, ureg
+from ..world.physics import diffusion_coefficient
 
 __all__ = [
     # the CSV header syntax and cleaning steps, shared with fieldplan.lab
@@ -1001,8 +1002,6 @@ def synthetic_tracks(actuator, body, medium, starts, program, *, frame_interval=
     TrackingData
         Already split into segments (one per body and program entry).
     """
-    from ..world.physics import diffusion_coefficient
-
     rng = np.random.default_rng(rng)
     pos = np.array(starts, dtype=float).reshape(-1, 2)
     n = len(pos)

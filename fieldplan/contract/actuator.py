@@ -289,7 +289,8 @@ class Actuator(abc.ABC):
         -------
         fieldplan.contract.schedule.HardwareLimits
         """
-        from .schedule import HardwareLimits  # noqa: PLC0415 - schedule imports this module (Channel, Segment)
+        # deferred import: import cycle: fieldplan.contract.schedule imports this module (Channel, Segment)
+        from .schedule import HardwareLimits  # noqa: PLC0415
 
         return HardwareLimits.from_channels(self.channels)
 

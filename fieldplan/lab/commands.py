@@ -8,6 +8,9 @@ from __future__ import annotations
 
 import os
 
+from ..errors import LimitError
+from ..units import to_si
+from ..world.simulate import Simulator
 from . import LabDependencyError
 
 __all__ = ["add_commands", "cmd_track", "cmd_play"]
@@ -87,8 +90,9 @@ def add_commands(add, nonneg_int):
 
 def cmd_track(args):
     """``fieldplan track``: returns the exit code; bad input raises the command's user error (exit 2)."""
-    from ..cli import EXIT_OK, say, show_progress, UserError  # noqa: PLC0415 - the command's own helpers
-    from ..units import to_si  # noqa: PLC0415
+    # deferred import: import cycle: fieldplan.cli imports this module to build its parser (cli is the layer above)
+    from ..cli import EXIT_OK, say, show_progress, UserError  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: `fieldplan --help` imports this module
     from .pixels import PixelMap, read_marks  # noqa: PLC0415
 
     if os.path.exists(args.out) and not args.force:
@@ -119,6 +123,7 @@ def cmd_track(args):
         pm = PixelMap.from_scale(args.px, rotation=math.radians(args.rotation), offset=off, flip_y=args.flip_y)
     else:
         raise UserError("give the pixel size (--px '0.65 um'), reference marks (--marks) or --affine.")
+    # deferred import: start-up time of the CLI: `fieldplan --help` imports this module
     from .inputlog import read_input_log  # noqa: PLC0415
 
     fps = args.fps
@@ -131,6 +136,7 @@ def cmd_track(args):
     if args.log_offset:
         log = log.shifted(args.log_offset)
     try:
+        # deferred import: start-up time of the CLI: `fieldplan --help` imports this module
         from .video import TABLE_SUFFIXES, track_video, tracks_from_table  # noqa: PLC0415
 
         if args.video.lower().endswith(TABLE_SUFFIXES):
@@ -154,6 +160,7 @@ def cmd_track(args):
         say(args, f"  {stubs} track(s) shorter than {args.min_length} frames dropped")
     say(args, f"tracking CSV: {args.out}")
     if args.fit:
+        # deferred import: start-up time of the CLI: `fieldplan --help` imports this module
         from ..workflows.fit import calibrate_command  # noqa: PLC0415
 
         if os.path.exists(args.fit) and not args.force:
@@ -167,10 +174,13 @@ def cmd_play(args):
     """``fieldplan play``: returns the exit code (130 when interrupted; the instrument is then idle)."""
     import numpy as np  # noqa: PLC0415
 
-    from ..cli import EXIT_OK, load_for_command, say, UserError  # noqa: PLC0415 - the command's own helpers
-    from ..errors import LimitError  # noqa: PLC0415
+    # deferred import: import cycle: fieldplan.cli imports this module to build its parser (cli is the layer above)
+    from ..cli import EXIT_OK, load_for_command, say, UserError  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: `fieldplan --help` imports this module
     from .drivers import open_driver  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: `fieldplan --help` imports this module
     from .pacing import RealTimeClock  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: `fieldplan --help` imports this module
     from .play import limits_text, load_for_play, play  # noqa: PLC0415
 
     if args.log and os.path.exists(args.log):
@@ -216,8 +226,6 @@ def cmd_play(args):
     on_segment = None
     sim = None
     if args.dry_run and sc is not None:
-        from ..world.simulate import Simulator  # noqa: PLC0415
-
         sim = Simulator(sc.truth or sc.actuator, sc.bodies, sc.workspace, sc.starts, rng=sc.simulation.seed)
 
         def on_segment(j, seg):

@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..calibration.tracking import channel_unit_si, column_unit_factor, parse_column_header
 from ..errors import FieldplanError
 from ..fileio import atomic_write
 
@@ -85,8 +86,6 @@ def read_input_log(path):
     InputLogError
         Missing columns or units, unreadable numbers, time not increasing (file and line named).
     """
-    from ..calibration.tracking import channel_unit_si, column_unit_factor, parse_column_header  # noqa: PLC0415 - one header syntax
-
     path = os.fspath(path)
     if not os.path.exists(path):
         raise InputLogError(f"{path}: input log not found.")

@@ -25,6 +25,7 @@ import numpy as np
 
 from ..errors import FieldplanError
 from ..planning.live import LiveResult, run_live
+from ..world.simulate import Simulator
 
 __all__ = ["OverrunWarning", "RealTimeClock", "PacedLiveResult", "run_realtime", "dry_run"]
 
@@ -222,8 +223,6 @@ def dry_run(controller, truth, starts, *, speed=1.0, rng=None, brownian=True, tr
     -------
     PacedLiveResult
     """
-    from ..world.simulate import Simulator  # noqa: PLC0415
-
     sim = Simulator(truth, controller.bodies, controller.workspace, starts, rng=rng, brownian=brownian,
                     tracking_noise=tracking_noise)
     res = run_realtime(controller, sim.observe, sim.apply, speed=speed, **options)

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..calibration.tracking import column_unit_factor, parse_column_header
 from ..errors import FieldplanError
 from ..units import to_si
 
@@ -194,8 +195,6 @@ def read_marks(path):
     pixels, workspace : ndarray, shape (k, 2)
         px and m.
     """
-    from ..calibration.tracking import column_unit_factor, parse_column_header  # noqa: PLC0415 - one header syntax for every CSV
-
     path = os.fspath(path)
     if not os.path.exists(path):
         raise PixelMapError(f"{path}: reference-mark file not found.")

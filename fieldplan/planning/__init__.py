@@ -28,7 +28,8 @@ def make_controller(actuator, bodies, workspace, goals, *, limits=None, settings
     if isinstance(settings, dict):
         settings = PlanSettings.from_dict(settings)
     if settings is not None and settings.method == "step":
-        from .plan import StepController  # noqa: PLC0415 - plan imports this package
+        # deferred import: import cycle: fieldplan.planning.plan imports this package (Controller, PlanSettings)
+        from .plan import StepController  # noqa: PLC0415
 
         return StepController(actuator, bodies, workspace, goals, limits=limits, settings=settings)
     return Controller(actuator, bodies, workspace, goals, limits=limits, settings=settings)

@@ -30,7 +30,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..contract.actuator import Segment
+from ..contract.schedule import Schedule
 from ..world.body import check_bodies, check_positions
+from ..world.simulate import Simulator, check_placement, compute_metrics
 from ..errors import FieldplanError, WorkspaceError
 from ..result import Result
 from . import make_controller
@@ -141,8 +143,6 @@ def run_live(controller, observe, apply, *, duration=None, on_step=None, latency
     -------
     LiveResult
     """
-    from ..contract.schedule import Schedule
-
     if latency < 0 or not np.isfinite(latency):
         raise FieldplanError(f"run_live latency must be a finite number >= 0 s, got {latency!r}.")
     if not (isinstance(max_dropped, (int, np.integer)) and max_dropped >= 0):
@@ -320,8 +320,6 @@ def closed_loop(model, truth, bodies, workspace, starts, goals, *, limits=None, 
     WorkspaceError
         Bad starts or goals (naming the body).
     """
-    from ..world.simulate import Simulator, check_placement, compute_metrics
-
     bodies = list(check_bodies(bodies))
     starts = check_positions(starts, "starts", n=len(bodies), error=WorkspaceError)
     goals = check_positions(goals, "goals", n=len(bodies), error=WorkspaceError)

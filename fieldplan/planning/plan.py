@@ -33,7 +33,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..contract.actuator import Segment
+from ..contract.schedule import Schedule
 from ..world.body import check_bodies, check_positions
+from ..world.simulate import Simulator, check_placement, compute_metrics
 from .step import (StepData, StepProgram, pair_slots, point_at, polyline_arclength, project_to_route,
                       reference_points, variation_length)
 from ..errors import WorkspaceError
@@ -770,9 +772,6 @@ def plan(actuator, bodies, workspace, starts, goals, *, limits=None, settings=No
     WorkspaceError
         A start or goal outside its body's free space, overlapping starts, goals closer than two radii.
     """
-    from ..contract.schedule import Schedule
-    from ..world.simulate import Simulator, check_placement, compute_metrics
-
     bodies = list(check_bodies(bodies))
     starts = check_positions(starts, "starts", n=len(bodies), error=WorkspaceError)
     goals = check_positions(goals, "goals", n=len(bodies), error=WorkspaceError)
@@ -871,7 +870,8 @@ def __getattr__(name):
     # capability_curve runs both plan() and closed_loop(), so it lives with the analyses
     # (fieldplan.analysis.capability); this keeps ``from fieldplan.plan import capability_curve`` working.
     if name == "capability_curve":
-        from ..analysis.capability import capability_curve  # noqa: PLC0415 - analysis imports this module
+        # deferred import: import cycle: fieldplan.analysis.capability imports this module (analysis is the layer above)
+        from ..analysis.capability import capability_curve  # noqa: PLC0415
 
         return capability_curve
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -25,7 +25,8 @@ class RunFigure:
 
 
 def _workspace(run, outputs):
-    from .run import plot_workspace  # noqa: PLC0415 - matplotlib only when figures are asked for
+    # deferred import: start-up time of the CLI: scenario loading reads this table, matplotlib only to draw
+    from .run import plot_workspace  # noqa: PLC0415
 
     sc = run.scenario
     trajs = [(f"trial {k + 1}", t.positions) for k, t in enumerate(run.trials[:5])]
@@ -44,6 +45,7 @@ def _first_path(run):
 
 
 def _timeline(run, outputs):
+    # deferred import: start-up time of the CLI: scenario loading reads this table, matplotlib only to draw
     from .run import plot_timeline  # noqa: PLC0415
 
     path = _first_path(run)
@@ -55,6 +57,7 @@ def _timeline(run, outputs):
 
 
 def _inputs(run, outputs):
+    # deferred import: start-up time of the CLI: scenario loading reads this table, matplotlib only to draw
     from .run import plot_inputs  # noqa: PLC0415
 
     if run.schedule is None or not run.schedule.n_segments:
@@ -81,7 +84,9 @@ def write_run_figures(folder, run, outputs):
     dict
         name (a key of :data:`RUN_FIGURES`, or ``"animation"``) -> path written.
     """
+    # deferred import: start-up time of the CLI: scenario loading reads this table, matplotlib only to draw
     from .run import animate  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: scenario loading reads this table, matplotlib only to draw
     from .style import save  # noqa: PLC0415
 
     written = {}

@@ -16,6 +16,7 @@ import os
 import numpy as np
 
 from ..fileio import atomic_path
+from ..units import format_quantity
 from .style import axis_label, draw_outlines, draw_workspace, figure, length_unit, save, speed_unit
 
 __all__ = ["length_unit", "axis_label", "plot_workspace", "plot_timeline", "plot_inputs", "plot_primitive_fields",
@@ -374,8 +375,6 @@ def _limit_lines(ax, lim, colour, unit):
         if val is not None:
             ax.axhline(val, color=colour, ls="--", lw=0.7, alpha=0.8)
     if lim.rms is not None:
-        from ..units import format_quantity  # noqa: PLC0415
-
         win = f", {format_quantity(lim.rms_window, 's')} window" if lim.rms_window else ""
         for s in (-1, 1):
             ax.axhline(s * lim.rms, color=colour, ls="-.", lw=0.7, alpha=0.8)
@@ -447,8 +446,6 @@ def plot_inputs(schedule, *, limits=None):
                                       gridspec_kw={"height_ratios": [p[2] for p in panels]})[:, 0])
     edges = np.linspace(t0, t1, _BINS + 1) if dense else None
     width = (t1 - t0) / _BINS
-    from ..units import format_quantity  # noqa: PLC0415
-
     wlab = format_quantity(width, "s")
     t = np.append(starts, t1)
     for ax, (kind, payload, _) in zip(axes, panels):

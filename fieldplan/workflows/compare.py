@@ -521,6 +521,7 @@ class Comparison:
         from matplotlib.figure import Figure  # noqa: PLC0415
         from matplotlib.patches import Rectangle  # noqa: PLC0415
 
+        # deferred import: start-up time of the CLI: matplotlib loads only when a figure is drawn
         from ..plots import axis_label  # noqa: PLC0415
 
         tol = np.array([r.get("tolerance") or np.nan for r in self.rows], dtype=float)

@@ -45,7 +45,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import FieldplanError, ScenarioError, UnitError
-from ..units import format_quantity, to_si
+from ..fileio import atomic_write, check_output_folder, json_safe, output_folder
+from ..units import format_quantity, si_scale, to_si
 
 __all__ = ["DesignSpec", "FreeParameter", "KeepSpec", "Candidate", "DesignResult", "MAX_EVALUATIONS",
            "load_design", "parse_design", "search", "closed_loop_check", "write_design", "design_command",
@@ -239,6 +240,7 @@ class _Problems:
         self.doc, self.items = doc, []
 
     def err(self, path, message):
+        # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
         from ..scenario import key_string  # noqa: PLC0415
 
         self.items.append((self.doc.file, self.doc.line(path), key_string(path), message))
@@ -280,6 +282,7 @@ def _unit_of(value, unit_hint):
 
 def _key_unit(cls, path):
     """The documented SI unit of a top-level actuator key, else None."""
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..scenario import actuator_params  # noqa: PLC0415
 
     try:
@@ -631,6 +634,7 @@ def load_design(path, *, allow_modules=()):
     ScenarioError
         Naming file, line and key of every problem.
     """
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..scenario import load_scenario, read_yaml  # noqa: PLC0415
 
     sc = load_scenario(path, allow_modules=allow_modules)
@@ -674,6 +678,7 @@ class _SubsetBasis:
         return self.fn.radius
 
     def __call__(self, xy):
+        # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
         from ..analysis import subset  # noqa: PLC0415
 
         return subset(self.fn(xy), self.indices)
@@ -683,6 +688,7 @@ class _Builder:
     """Candidate scenarios from the start scenario's normalised form (picklable, plain data)."""
 
     def __init__(self, scenario, spec):
+        # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
         from ..scenario import scenario_to_dict  # noqa: PLC0415
 
         self.base = _copy(scenario_to_dict(scenario))
@@ -712,6 +718,7 @@ class _Builder:
         return acfg
 
     def scenario(self, acfg):
+        # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
         from ..scenario import YamlDoc, parse_scenario  # noqa: PLC0415
 
         d = dict(self.base)
@@ -794,6 +801,7 @@ class _Evaluator:
         return acfg, sc.actuator
 
     def basis_functions(self, act, kept):
+        # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
         from ..analysis import basis_function  # noqa: PLC0415
 
         fn = basis_function(act, self.bodies, self.workspace.medium)
@@ -803,6 +811,7 @@ class _Evaluator:
         return fn, one
 
     def __call__(self, task):
+        # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
         from ..analysis import count_curve, speed_map  # noqa: PLC0415
 
         x, kept = task
@@ -1172,6 +1181,7 @@ def _continuous(runner, spec, budget, kept, x0):
 
 def _keep_fields_check(builder, evaluator, x, keep, scenario):
     """True when keep's items are the basis fields one for one (rebuild with a subset == subset of the basis)."""
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..analysis import basis_function, subset  # noqa: PLC0415
 
     M = len(keep.items)
@@ -1211,6 +1221,7 @@ def _materialised_ok(builder, x, scenario, keep):
 
 def _subset_seed(evaluator, x, keep, scenario, spec):
     """select_primitives' choice on the design ``x`` (single bodies over the free space)."""
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..analysis import select_primitives  # noqa: PLC0415
 
     _, act = evaluator.actuator(x, None)
@@ -1388,8 +1399,10 @@ def closed_loop_check(result, *, counts=None, trials=None, seed=None):
         ``{"start": {N: {...}}, "best": {N: {...}}}``, each entry as capability_curve gives it plus
         ``successes``, ``low`` and ``high`` (95 % Wilson interval).
     """
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..analysis.capability import capability_curve  # noqa: PLC0415
-    from ..analysis.counts import wilson_interval as _wilson  # noqa: PLC0415 - the one Wilson interval
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
+    from ..analysis.counts import wilson_interval as _wilson  # noqa: PLC0415
 
     spec = result.spec
     trials = int(trials or spec.final_check.get("trials") or 3)
@@ -1434,8 +1447,8 @@ def plot_objective(result):
     """
     from matplotlib.figure import Figure  # noqa: PLC0415
 
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..plots import axis_label  # noqa: PLC0415
-    from ..units import si_scale  # noqa: PLC0415
 
     spec = result.spec
     panels = list(spec.free) + [None]
@@ -1485,6 +1498,7 @@ def plot_objective(result):
 
 
 def _maps(result, shape):
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..analysis import basis_function, speed_map  # noqa: PLC0415
 
     out = {}
@@ -1503,6 +1517,7 @@ def plot_speed_maps(result, shape=None):
     """
     from matplotlib.figure import Figure  # noqa: PLC0415
 
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..plots.steerability import plot_speed_map  # noqa: PLC0415
 
     shape = shape or result.spec.grid
@@ -1523,7 +1538,9 @@ def plot_count_curves(result, counts=None, trials=None):
     -------
     matplotlib.figure.Figure
     """
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..analysis import basis_function, count_curve  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..plots.steerability import plot_count_curve  # noqa: PLC0415
 
     spec = result.spec
@@ -1552,6 +1569,7 @@ def plot_closed_loop(check):
     from matplotlib.figure import Figure  # noqa: PLC0415
     from matplotlib.ticker import MaxNLocator  # noqa: PLC0415
 
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..plots import axis_label  # noqa: PLC0415
 
     fig = Figure(figsize=(6.0, 4.0), layout="constrained")
@@ -1596,10 +1614,10 @@ def write_design(out_dir, result, *, force=False, check=None, inputs=(), dpi=120
     dict
         Role -> path of every file written.
     """
-    from ..fileio import json_safe, output_folder  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..plots import save  # noqa: PLC0415
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from ..scenario import dump_scenario  # noqa: PLC0415
-    from ..fileio import atomic_write  # noqa: PLC0415
 
     out = os.path.abspath(os.fspath(out_dir))
     # Build everything before touching the disk: a failure leaves no half-written folder.
@@ -1661,8 +1679,8 @@ def add_command(add):
 
 def design_command(args):
     """``fieldplan design FILE --out DIR``: load, check the output folder, search, (check), write. Exit code."""
+    # deferred import: start-up time of the CLI: fieldplan.cli imports this module to build its parser
     from .compare import make_executor  # noqa: PLC0415
-    from ..fileio import check_output_folder  # noqa: PLC0415
 
     if args.workers is not None and args.workers < 0:
         raise FieldplanError(f"--workers must be >= 0, got {args.workers}.")

@@ -34,6 +34,7 @@ import os
 
 import numpy as np
 
+from .. import __version__
 from ..errors import FieldplanError
 from ..fileio import (
     MARKER,
@@ -127,8 +128,6 @@ def summary_dict(run):
     """The summary of a run (what ``summary.json`` holds), JSON-safe."""
     sc = run.scenario
     sched = run.schedule
-    from .. import __version__  # noqa: PLC0415
-
     d = {
         "format": "fieldplan-summary",
         "format_version": 1,
