@@ -280,7 +280,8 @@ class Schedule:
     """
 
     #: Distinct limits values whose violations one schedule remembers (least recently used dropped).
-    #: A schedule meets one scenario's limits, plus the driver's and a relaxed copy at most.
+    #: On the way from plan to driver a schedule meets one or two limits values (the scenario's,
+    #: the player's); a few more leave room without letting the memo grow.
     _MEMO_SIZE = 4
 
     def __init__(self, channels, starts, durations, values, labels=None, meta=None):
