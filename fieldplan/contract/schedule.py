@@ -221,6 +221,27 @@ def _channel_from_dict(d):
     return Channel(d["name"], d["unit"], d["lower"], d["upper"], d.get("idle", 0.0), tuple(d.get("values", ())))
 
 
+def _frozen(a):
+    """``a`` made read-only (it must be a private copy: a view would share writable memory)."""
+    a.setflags(write=False)
+    return a
+
+
+def _same(a, b):
+    """Whether float arrays ``a`` and ``b`` are identical, the sign of zero included (it is written)."""
+    return a.shape == b.shape and np.array_equal(a, b) and np.array_equal(np.signbit(a), np.signbit(b))
+
+
+def _limits_key(limits):
+    """A hashable key equal for equal limits values.
+
+    :class:`HardwareLimits` holds a dict and is not frozen, so it has no hash, and one object may be
+    changed between two checks; the key is its canonical JSON text (with the type, in case a
+    subclass reads its fields differently), taken at each call.
+    """
+    return type(limits).__qualname__, json.dumps(limits.to_dict(), sort_keys=True, default=repr)
+
+
 _HEADER = re.compile(r"^\s*(?P<name>[^\[\]]+?)\s*\[(?P<unit>[^\]]*)\]\s*$")
 
 
@@ -239,6 +260,16 @@ class Schedule:
     meta : dict, optional
         Free-form metadata carried into the JSON export.
 
+    Notes
+    -----
+    A schedule does not change once built: ``starts``, ``durations`` and ``values`` are private,
+    read-only copies of what was passed (writing into them raises ``ValueError``), ``channels``
+    and ``labels`` are tuples, and none of these attributes can be reassigned. That is what lets
+    :meth:`violations` remember its result per limits value: the schedule is checked on its way
+    from planner to driver several times (planner, run, export, each writer, the player), and a
+    repeated check costs a dictionary look-up and cannot disagree with the first. ``meta`` stays
+    a plain (copied) dict: it is not checked against limits.
+
     Examples
     --------
     >>> from fieldplan import Channel, Segment
@@ -248,12 +279,19 @@ class Schedule:
     (0.75, 2)
     """
 
+    #: Distinct limits values whose violations one schedule remembers (least recently used dropped).
+    #: On the way from plan to driver a schedule meets one or two limits values (the scenario's,
+    #: the player's); a few more leave room without letting the memo grow.
+    _MEMO_SIZE = 4
+
     def __init__(self, channels, starts, durations, values, labels=None, meta=None):
-        self.channels = tuple(channels)
-        self.starts = np.asarray(starts, dtype=float).reshape(-1)
-        self.durations = np.asarray(durations, dtype=float).reshape(-1)
+        self._channels = tuple(channels)
+        # np.array copies: the caller's arrays stay the caller's, and ours cannot change under a
+        # remembered check (see _frozen).
+        self._starts = _frozen(np.array(starts, dtype=float).reshape(-1))
+        self._durations = _frozen(np.array(durations, dtype=float).reshape(-1))
         m = len(self.channels)
-        self.values = np.asarray(values, dtype=float).reshape(len(self.starts), m)
+        self._values = _frozen(np.array(values, dtype=float).reshape(len(self.starts), m))
         if len(self.durations) != len(self.starts):
             raise FieldplanError("Schedule: starts and durations differ in length.")
         if np.any(self.durations < 0) or not np.all(np.isfinite(self.durations)):
@@ -266,8 +304,45 @@ class Schedule:
                 j = int(np.argmax(np.abs(gap)))
                 raise FieldplanError(f"Schedule: segment {j + 1} starts at {self.starts[j + 1]} s, "
                                      f"not where segment {j} ends ({self.starts[j] + self.durations[j]} s).")
-        self.labels = list(labels) if labels is not None else [""] * len(self.starts)
+        self._labels = tuple(labels) if labels is not None else ("",) * len(self.starts)
+        if len(self._labels) != len(self.starts):
+            # zip() in the writers would silently drop the segments past the last label.
+            raise FieldplanError(f"Schedule: {len(self._labels)} labels for {len(self.starts)} segments; "
+                                 "give one label per segment (or none).")
         self.meta = dict(meta or {})
+        # limits key -> tuple of violations, most recently used last (see violations()).
+        self._memo = {}
+
+    def __reduce__(self):
+        # Rebuilt through __init__, so a copy sent to a worker process is read-only too (numpy
+        # does not keep the flag through pickling); the memo is not sent, it is rebuilt on demand.
+        return (type(self), (self._channels, self._starts, self._durations, self._values, self._labels,
+                             self.meta))
+
+    @property
+    def channels(self):
+        """tuple of Channel: the channels, in column order of :attr:`values`."""
+        return self._channels
+
+    @property
+    def starts(self):
+        """ndarray, shape (S,), s: segment starts (read-only)."""
+        return self._starts
+
+    @property
+    def durations(self):
+        """ndarray, shape (S,), s: segment durations (read-only)."""
+        return self._durations
+
+    @property
+    def values(self):
+        """ndarray, shape (S, m), channel units: value of each channel per segment (read-only)."""
+        return self._values
+
+    @property
+    def labels(self):
+        """tuple of str, shape (S,): name of the primitive or "mix"/"idle" per segment."""
+        return self._labels
 
     # -- construction ---------------------------------------------------------------------------
     @classmethod
@@ -377,10 +452,37 @@ class Schedule:
 
         Each limit is met within :data:`LIMIT_RTOL` relative to it (:func:`within_limit`): a
         schedule exactly at a bound, slew or RMS limit passes despite float round-off.
+
+        The result is remembered per limits *value* (the schedule cannot change, see the class
+        notes): a second call with equal limits, the same object or not, returns the same
+        violations without scanning again. A few distinct limits values are remembered.
+
+        Parameters
+        ----------
+        limits : HardwareLimits or None
+            ``None`` checks nothing.
+
+        Returns
+        -------
+        list of tuple (str, str or None, float, str)
+            Message, channel name (``None`` for the time step), time in s, and the limit broken
+            (``"upper"``, ``"lower"``, ``"slew_rate"``, ``"min_dwell"``, ``"rms"``, ``"time_step"``).
+            A new list on each call: changing it changes nothing remembered.
         """
-        out = []
         if limits is None:
-            return out
+            return []
+        key = _limits_key(limits)
+        found = self._memo.pop(key, None)
+        if found is None:
+            found = tuple(self._scan(limits))
+            if len(self._memo) >= self._MEMO_SIZE:
+                del self._memo[next(iter(self._memo))]   # dicts keep order: the least recently used
+        self._memo[key] = found                          # (re)inserted last: most recently used
+        return list(found)
+
+    def _scan(self, limits):
+        """The full check behind :meth:`violations` (bounds, slew, dwell, windowed RMS, time step)."""
+        out = []
         ts = limits.time_step
 
         def q(v, unit):
@@ -433,6 +535,8 @@ class Schedule:
 
     def check(self, limits):
         """Raise :class:`LimitError` for the first violation of ``limits`` (naming channel and time).
+
+        Uses :meth:`violations`, so checking again against equal limits does not scan again.
 
         Returns
         -------
@@ -505,7 +609,9 @@ class Schedule:
         one), and on channels with an RMS limit values are rounded towards zero, which cannot raise
         any window's RMS. Channels with a discrete set of values (``Channel.values``, e.g. tones)
         are left exactly as they are. Starts and durations that are multiples of ``time_step`` are
-        rewritten as exact decimals of it. Quantising a quantised schedule changes nothing.
+        rewritten as exact decimals of it. Quantising a quantised schedule changes nothing, and
+        then ``self`` is returned, with what :meth:`violations` remembers: the writers' check of a
+        schedule already checked against equal limits costs nothing.
 
         Parameters
         ----------
@@ -516,6 +622,7 @@ class Schedule:
         Returns
         -------
         Schedule
+            ``self`` if no value, start or duration changes (bit for bit), else a new schedule.
         """
         if not self.n_segments:
             return self
@@ -559,6 +666,8 @@ class Schedule:
             if on_grid:
                 durs = np.round(np.round(durs / ts) * ts, dec)
                 starts = np.round(np.round(starts / ts) * ts, dec)
+        if _same(vals, self.values) and _same(starts, self.starts) and _same(durs, self.durations):
+            return self
         return Schedule(self.channels, starts, durs, vals, self.labels, self.meta)
 
     # -- export ----------------------------------------------------------------------------------

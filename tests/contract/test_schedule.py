@@ -225,3 +225,185 @@ def test_limit_messages_use_si_prefixes_and_no_unit_1():
     assert "'gain' = 5 at t = 2 ms exceeds the upper limit 4" in text
     assert "the slew limit 20 /s allows 0.04 over 2 ms" in text
     assert " 1 " not in text and "(1)" not in text
+
+
+# -- one schedule, checked many times: read-only arrays, remembered violations ------------------
+
+def spy_scans(monkeypatch):
+    """Replace ``Schedule._scan`` (the full check) by a counting wrapper; returns the list of
+    ``(schedule, limits dict)`` scanned (the schedules are kept, so their ids are not reused)."""
+    from fieldplan.contract import schedule as mod
+
+    seen = []
+    inner = mod.Schedule._scan
+
+    def scan(self, limits):
+        seen.append((self, json.dumps(limits.to_dict(), sort_keys=True)))
+        return inner(self, limits)
+
+    monkeypatch.setattr(mod.Schedule, "_scan", scan)
+    return seen
+
+
+def test_arrays_are_read_only_private_copies():
+    starts, durs = np.array([0.0, 0.5]), np.array([0.5, 0.25])
+    vals = np.array([[1.0, 0.0], [-1.0, 0.5]])
+    s = Schedule(CH, starts, durs, vals, ["a", "b"])
+    for arr in (s.starts, s.durations, s.values):
+        with pytest.raises(ValueError, match="read-only"):
+            arr[0] = 9.0
+    with pytest.raises(ValueError, match="read-only"):
+        s.values[:, 1] *= 2
+    for name in ("starts", "durations", "values", "labels", "channels"):
+        with pytest.raises(AttributeError):
+            setattr(s, name, getattr(s, name))
+    assert isinstance(s.labels, tuple) and isinstance(s.channels, tuple)
+    # the caller's arrays are copied, not frozen: changing them later does not change the schedule
+    vals[0, 0] = 2.0
+    starts[1] = 0.7
+    assert s.values[0, 0] == 1.0 and s.starts[1] == 0.5 and vals.flags.writeable
+    # what the schedule hands out to be changed is a copy
+    v = s.value_at(0.1)
+    v[0] = 5.0
+    assert s.values[0, 0] == 1.0
+
+
+def test_pickled_schedule_stays_read_only():
+    import pickle
+
+    s = sched()
+    s.check(HardwareLimits.from_channels(CH))
+    back = pickle.loads(pickle.dumps(s))
+    assert back == s and back.labels == s.labels and back.meta == s.meta
+    with pytest.raises(ValueError, match="read-only"):
+        back.values[0, 0] = 0.0
+
+
+def test_labels_must_match_segments():
+    with pytest.raises(Exception, match="1 labels for 2 segments"):
+        Schedule(CH, [0.0, 0.5], [0.5, 0.5], [[0, 0], [1, 1]], ["a"])
+
+
+def test_violations_are_remembered_per_limits_value(monkeypatch):
+    seen = spy_scans(monkeypatch)
+    s = sched()
+    lim = HardwareLimits({"coil_2": ChannelLimit(upper=2.0, slew_rate=10.0)})
+    first = s.violations(lim)
+    assert len(seen) == 1 and {v[3] for v in first} == {"upper", "slew_rate"}
+    # an equal limits value, a different object: no second scan, the same content
+    again = HardwareLimits({"coil_2": ChannelLimit(upper=2.0, slew_rate=10.0)})
+    assert again is not lim and s.violations(again) == first and len(seen) == 1
+    with pytest.raises(LimitError, match="coil_2"):
+        s.check(again)
+    assert len(seen) == 1
+    # the remembered result equals a fresh scan of an equal schedule
+    fresh = Schedule(s.channels, s.starts, s.durations, s.values, s.labels)
+    assert fresh.violations(lim) == first and len(seen) == 2
+    # a caller changing the list it got changes nothing remembered
+    got = s.violations(lim)
+    got.clear()
+    first_again = s.violations(lim)
+    assert first_again == first and first_again is not first and len(seen) == 2
+    # a different limits value scans again
+    assert s.violations(HardwareLimits({"coil_2": ChannelLimit(upper=2.6)})) == [] and len(seen) == 3
+    # limits changed in place (HardwareLimits is not frozen) are a different value: scanned again
+    lim.channels["coil_2"] = ChannelLimit(upper=2.4)
+    assert [v[3] for v in s.violations(lim)] == ["upper"] and len(seen) == 4
+    # ... and changed back to a value already seen, remembered again
+    lim.channels["coil_2"] = ChannelLimit(upper=2.6)
+    assert s.violations(lim) == [] and len(seen) == 4
+    # None checks nothing and scans nothing
+    assert s.violations(None) == [] and s.check(None) is s and len(seen) == 4
+
+
+def test_violations_memo_is_bounded(monkeypatch):
+    seen = spy_scans(monkeypatch)
+    s = sched()
+    n = Schedule._MEMO_SIZE
+    lims = [HardwareLimits({"coil_1": ChannelLimit(upper=2.0 + 0.1 * k)}) for k in range(n + 1)]
+    for lim in lims:
+        s.violations(lim)
+    assert len(seen) == n + 1 and len(s._memo) == n
+    s.violations(lims[-1])                 # still remembered
+    assert len(seen) == n + 1
+    s.violations(lims[0])                  # the least recently used was dropped: scanned again
+    assert len(seen) == n + 2 and len(s._memo) == n
+
+
+def test_quantise_values_of_a_quantised_schedule_is_itself(monkeypatch, tmp_path):
+    lim = HardwareLimits.from_channels(CH, time_step=0.0001)
+    s = sched()
+    q = s.quantise_values(lim)
+    assert q is not s and q != s
+    assert q.quantise_values(lim) is q
+    assert q.quantise_values() is q   # from_channels declares no resolution: the default, q is on it
+    # so the writers' checks reuse the check already made: one scan for check + CSV + JSON
+    seen = spy_scans(monkeypatch)
+    q.check(lim)
+    q.write_csv(tmp_path / "q.csv", lim)
+    q.write_json(tmp_path / "q.json", limits=lim)
+    assert [x[0] for x in seen] == [q]
+    assert Schedule.read_csv(tmp_path / "q.csv", CH) == q == Schedule.read_json(tmp_path / "q.json")
+
+
+def test_quantise_values_keeps_the_sign_of_zero():
+    """-0.0 is written as '-0.0': a schedule is only returned as is when it is identical bit for bit."""
+    ch = (Channel("coil_1", "A", -3, 3),)
+    s = Schedule.from_segments(ch, [Segment(0, 0.5, [-0.0]), Segment(0, 0.5, [1.0])])
+    q = s.quantise_values()
+    assert q is s and np.signbit(q.values[0, 0])
+    tiny = Schedule.from_segments(ch, [Segment(0, 0.5, [-1e-15]), Segment(0, 0.5, [1.0])])
+    assert tiny.quantise_values() is not tiny
+
+
+def test_remembered_violation_still_refused_by_the_writers(tmp_path):
+    """A schedule on the grid with a violation: checked once, then each writer refuses it too."""
+    ch = (Channel("coil_1", "A", -3, 3),)
+    lim = HardwareLimits({"coil_1": ChannelLimit(upper=1.5)}, time_step=0.1)
+    s = Schedule.from_segments(ch, [Segment(0, 0.1, [0.0]), Segment(0, 0.1, [2.0])])
+    assert s.quantise_values(lim) is s
+    with pytest.raises(LimitError, match="upper limit"):
+        s.check(lim)
+    with pytest.raises(LimitError, match="upper limit"):
+        s.write_csv(tmp_path / "x.csv", limits=lim)
+    with pytest.raises(LimitError, match="upper limit"):
+        s.write_json(tmp_path / "x.json", limits=lim)
+    assert not list(tmp_path.iterdir())
+
+
+def test_plan_to_export_scans_each_schedule_once_per_limits(monkeypatch, tmp_path):
+    """Plan, run and export a small scenario with limits: the schedule is checked several times on
+    the way (planner, run, export, each writer), but each (schedule, limits) pair is scanned once."""
+    from fieldplan.scenario import load_scenario
+    from fieldplan.workflows.compare import run_scenario
+    from fieldplan.workflows.export import write_outputs
+
+    text = """\
+name: scan-count
+workspace: {boundary: {rectangle: [0, 0, 1 mm, 1 mm]}}
+bodies: [{kind: bead, count: 2, radius: 5 um, density: 1050 kg/m^3}]
+starts: [[0.3 mm, 0.3 mm], [0.7 mm, 0.3 mm]]
+goals: [[0.3 mm, 0.7 mm], [0.7 mm, 0.7 mm]]
+actuator: {type: source-array, sources: [[0 mm, 0 mm], [1 mm, 0 mm], [1 mm, 1 mm]], force: 3 pN}
+planner: {tolerance: 30 um, max_steps: 60}
+simulation: {trials: 0}
+outputs: {plots: false}
+limits:
+  time_step: 0.05
+  channels:
+    source_1: {upper: 0.8, slew_rate: 5.0}
+    source_2: {rms: 0.9}
+"""
+    sc = load_scenario(text, name="scan-count.yaml")
+    seen = spy_scans(monkeypatch)
+    calls = []
+    inner = Schedule.violations
+    monkeypatch.setattr(Schedule, "violations", lambda self, limits: calls.append(self) or inner(self, limits))
+    run = run_scenario(sc, trials=0)
+    write_outputs(tmp_path / "out", run)
+    assert (tmp_path / "out" / "schedule.csv").exists()
+    pairs = [(id(s), key) for s, key in seen]
+    assert len(pairs) == len(set(pairs)), "a schedule was scanned twice against equal limits"
+    key = json.dumps(sc.limits.to_dict(), sort_keys=True)
+    assert (id(run.schedule), key) in pairs          # what was written was scanned, against these limits
+    assert len(calls) > len(seen)                    # and checked more often than scanned
