@@ -172,9 +172,7 @@ DEFERRED_REASONS = ("import cycle", "optional extra", "start-up time of the CLI"
 
 #: Function-level imports left unmarked on purpose, as (file, imported module): the file is being
 #: edited elsewhere (layout issue), so its imports are not touched here. Remove an entry when its file is marked.
-UNMARKED_ALLOWED = {
-    ("fieldplan/contract/schedule.py", "fieldplan"),  # being edited elsewhere
-}
+UNMARKED_ALLOWED = set()
 
 
 def _own_module(node, package):

@@ -745,6 +745,7 @@ class Schedule:
         q = self.quantise_values(limits)
         if limits is not None:
             q.check(limits)
+        # deferred import: import cycle: fieldplan (the package root) imports fieldplan.contract.schedule
         from .. import __version__
 
         extra = dict(extra or {})
