@@ -26,7 +26,8 @@ class PlanSettings:
     ----------
     period : float, optional
         Control period, s. Default: chosen from the speeds so the median body moves about one
-        trust radius per period (rounded to the hardware time step, at least the minimum dwell).
+        trust radius per period (rounded to the hardware time step, at least the minimum dwell; in
+        timeshare mode at least 8 hardware slots, so that a mix of primitives can be played).
     method : {"horizon", "step"}
         ``"horizon"`` (default): the horizon planner of :class:`fieldplan.planning.Controller` -
         sequential convex programming over ``horizon`` periods for all bodies at once, with each
@@ -57,7 +58,8 @@ class PlanSettings:
     table_resolution : float, optional
         Cell of that grid, m (default half the route grid cell).
     tolerance : float, optional
-        Arrival radius, m (default each body's radius).
+        Arrival radius, m (default each body's radius). The horizon cost has a dead zone of 0.3 times
+        this around each goal.
     time_limit : float, optional
         Longest plan, s (default, horizon method: ten times the slowest body's time-to-go or four
         times the sum of them, whichever is longer, plus ``50 + settle_steps`` periods: enough to
@@ -86,7 +88,8 @@ class PlanSettings:
     max_steps : int, optional
         Most controller steps of a plan (default: as many as the time limit needs, plus settling).
     stall_window : int
-        Periods over which progress is measured to detect a stall.
+        Periods over which progress is measured to detect a stall (horizon method: the summed cost of
+        the times-to-go, as ``balance`` weighs them, falls by less than 2 % over them).
     stall_progress : float
         Step method: A body stalls when over the window it progresses less than this fraction of what the fields
         could do for it alone, or less than a third of what the step program planned for it.
@@ -110,35 +113,43 @@ class PlanSettings:
         Most extra periods spent on that settling.
     """
 
-    # Each field's unit, one-line meaning and allowed values (metadata) are what scenario files,
-    # `fieldplan schema` and the README reference read (fieldplan.scenario.fields); the checks are below.
+    # Each field's unit, one-line meaning, allowed values and, where a None default is computed, what
+    # it becomes (metadata) are what scenario files, `fieldplan schema` and the README's settings table
+    # read (fieldplan.scenario.fields); the docstring above holds the long description, and
+    # tests/planning/test_settings.py fails when the two disagree on a name, unit or choice.
     period: float | None = field(default=None, metadata={
-        "unit": "s", "doc": "Control period (default: the median body moves about one trust radius per period)."})
+        "unit": "s", "default_text": "from the speeds",
+        "doc": "Control period; the automatic one lets the median body move about one trust radius, and in "
+               "timeshare mode holds at least 8 hardware slots (time steps or minimum dwells) for a mix to be played."})
     method: str = field(default="horizon", metadata={
         "choices": ("horizon", "step"),
         "doc": "horizon: sequential convex programming over the horizon for all bodies at once; step: the "
                "earlier route-tracking step controller."})
     horizon: int | None = field(default=None, metadata={
-        "doc": "Periods the program looks ahead (default: from the fields' variation length and the bodies' "
-               "speeds; the step method 1)."})
+        "default_text": "2 / trust_fraction, within 8 to 30 (step method: 1)",
+        "doc": "Periods the program looks ahead."})
     iterations: int = field(default=3, metadata={
-        "doc": "Sequential convex programming iterations per period (horizon method)."})
+        "doc": "Sequential convex programming iterations (QP solves) per period (horizon method)."})
     replan_every: int = field(default=1, metadata={
         "doc": "Periods of each plan played before planning again from new measurements (horizon method)."})
     balance: str = field(default="squared", metadata={
         "choices": ("time", "squared"),
-        "doc": "How the bodies' times-to-go are traded: their sum (time) or the sum of their squares (squared)."})
+        "doc": "How the bodies' times-to-go are traded: their sum (time: bodies near home are held) or the sum "
+               "of their squares (squared: whoever is furthest behind is served first)."})
     field_table: bool = field(default=True, metadata={
         "doc": "Roll candidate sequences out on the field basis tabulated on a grid (horizon method; the "
                "simulator always uses the exact model)."})
     table_resolution: float | None = field(default=None, metadata={
-        "unit": "m", "doc": "Cell of that grid (default half the route grid cell)."})
+        "unit": "m", "default_text": "half the route grid cell", "doc": "Cell of the field_table grid."})
     tolerance: float | None = field(default=None, metadata={
-        "unit": "m", "doc": "Arrival radius (default each body's radius)."})
+        "unit": "m", "default_text": "each body's radius",
+        "doc": "Arrival radius (the horizon cost has a dead zone of 0.3 times this around each goal)."})
     time_limit: float | None = field(default=None, metadata={
-        "unit": "s", "doc": "Longest plan (default: from the bodies' times to their goals)."})
+        "unit": "s", "doc": "Longest plan.",
+        "default_text": "10 times the slowest time-to-go or 4 times their sum, plus 50 + settle_steps periods"})
     clearance: float | None = field(default=None, metadata={
-        "unit": "m", "doc": "Extra distance kept from walls and between bodies (default half the largest radius)."})
+        "unit": "m", "default_text": "half the largest radius",
+        "doc": "Extra distance kept from walls and between bodies."})
     tracking_weight: float = field(default=1.0, metadata={
         "doc": "Objective weight of tracking (positions in trust radii)."})
     effort_weight: float = field(default=1e-3, metadata={
@@ -152,17 +163,20 @@ class PlanSettings:
     trust_fraction: float = field(default=0.2, metadata={
         "doc": "Trust radius per period as a fraction of the fields' variation length |f| / |grad f|."})
     max_trust: float | None = field(default=None, metadata={
-        "unit": "m", "doc": "Largest trust radius (default 1/20 of the workspace's larger side)."})
+        "unit": "m", "default_text": "1/20 of the workspace's larger side", "doc": "Largest trust radius."})
     route_resolution: float | None = field(default=None, metadata={
-        "unit": "m", "doc": "Route and cost-to-go grid cell (default fieldplan.routes.default_resolution)."})
+        "unit": "m", "default_text": "1/64 of the workspace's larger side",
+        "doc": "Route and cost-to-go grid cell (a grid of more than 10^6 cells is an error)."})
     field_aware_routes: bool = field(default=False, metadata={
         "doc": "Step method: route edge cost is the time at the available speed instead of the length."})
     assign_goals: bool = field(default=False, metadata={
         "doc": "Bodies of the same kind may swap goals (in a scenario file: goals.unlabelled)."})
     max_steps: int | None = field(default=None, metadata={
-        "doc": "Most controller steps of a plan (default: as many as the time limit needs, plus settling)."})
+        "default_text": "what the time limit needs, plus settling",
+        "doc": "Most controller steps of a plan (a safety cap; the time limit normally ends a plan)."})
     stall_window: int = field(default=8, metadata={
-        "doc": "Periods over which progress is measured to detect a stall."})
+        "doc": "Periods over which progress is measured to detect a stall (horizon method: the summed "
+               "time-to-go cost falls by less than 2 % over them)."})
     stall_progress: float = field(default=0.05, metadata={
         "doc": "Step method: fraction of the possible progress below which a body stalls."})
     relinearise: bool = field(default=True, metadata={
@@ -170,17 +184,26 @@ class PlanSettings:
     backend: str = field(default="osqp", metadata={
         "choices": ("osqp", "cvxpy"), "doc": "Step method: step program back end."})
     solver: str | None = field(default=None, metadata={
-        "doc": "cvxpy solver name for the cvxpy back end."})
+        "default_text": "OSQP", "doc": "cvxpy solver name for the cvxpy back end."})
     separation_slots: int | None = field(default=None, metadata={
-        "doc": "Step method: room for pair constraints per period (default all pairs up to 4 n)."})
+        "default_text": "all pairs, up to 4 n",
+        "doc": "Step method: room for pair constraints per period."})
     timeshare_rounds: int = field(default=4, metadata={
         "doc": "Timeshare mode: play each period's primitive mix in this many shorter rounds."})
     arrival_margin: float = field(default=0.5, metadata={
         "doc": "Open loop: keep steering until every body is within this fraction of its tolerance."})
     settle_steps: int = field(default=30, metadata={
-        "doc": "Most extra periods spent on that settling."})
+        "doc": "Most extra periods spent settling to within arrival_margin of the tolerance."})
 
     def __post_init__(self):
+        # Text settings take the values their metadata lists (the list the scenario reader and the
+        # reference show); the values are quoted in the message, so it names only the field at fault.
+        for f in dataclasses.fields(self):
+            choices = f.metadata.get("choices")
+            v = getattr(self, f.name)
+            if choices and not (isinstance(v, str) and v in choices):
+                raise FieldplanError(f"PlanSettings {f.name} must be {_one_of(choices)}, got {v!r}.")
+
         def positive(key, allow_none=True):
             v = getattr(self, key)
             if v is None and allow_none:
@@ -198,10 +221,6 @@ class PlanSettings:
                 raise FieldplanError(f"PlanSettings {key} must be a finite number >= 0, got {v!r}.")
         if self.clearance is not None and not (np.isfinite(self.clearance) and self.clearance >= 0):
             raise FieldplanError(f"PlanSettings clearance must be >= 0 m, got {self.clearance!r}.")
-        if self.balance not in ("time", "squared"):
-            raise FieldplanError(f"PlanSettings balance must be 'time' or 'squared', got {self.balance!r}.")
-        if self.method not in ("horizon", "step"):
-            raise FieldplanError(f"PlanSettings method must be 'horizon' or 'step', got {self.method!r}.")
         if self.horizon is not None and not (isinstance(self.horizon, (int, np.integer))
                                              and not isinstance(self.horizon, bool) and self.horizon >= 1):
             raise FieldplanError(f"PlanSettings horizon must be an integer >= 1 (or None for automatic), "
@@ -217,8 +236,6 @@ class PlanSettings:
             raise FieldplanError(f"PlanSettings arrival_margin must be in (0, 1], got {self.arrival_margin!r}.")
         if not (isinstance(self.settle_steps, (int, np.integer)) and self.settle_steps >= 0):
             raise FieldplanError(f"PlanSettings settle_steps must be an integer >= 0, got {self.settle_steps!r}.")
-        if self.backend not in ("osqp", "cvxpy"):
-            raise FieldplanError(f"PlanSettings backend must be 'osqp' or 'cvxpy', got {self.backend!r}.")
 
     @classmethod
     def from_dict(cls, d):
@@ -231,6 +248,21 @@ class PlanSettings:
 
     def to_dict(self):
         return dataclasses.asdict(self)
+
+
+def _one_of(choices):
+    """``'a' or 'b'``, ``one of 'a', 'b' or 'c'``: the allowed values of a setting, quoted.
+
+    Examples
+    --------
+    >>> _one_of(("time", "squared")), _one_of(("a", "b", "c"))
+    ("'time' or 'squared'", "one of 'a', 'b' or 'c'")
+    """
+    quoted = [repr(c) for c in choices]
+    if len(quoted) == 1:
+        return quoted[0]
+    listed = f"{', '.join(quoted[:-1])} or {quoted[-1]}"
+    return listed if len(quoted) == 2 else f"one of {listed}"
 
 
 def check_goals(bodies, workspace, goals):

@@ -6,14 +6,17 @@ field once, where it is declared::
     period: float | None = field(default=None, metadata={"unit": "s", "doc": "Control period."})
 
 :func:`field_keys` turns those fields into the :class:`Key` rows of :data:`~fieldplan.scenario.SCHEMA`,
-so the reader, ``fieldplan schema`` and the README reference all follow the dataclass. Metadata keys
-read here:
+so the reader, ``fieldplan schema`` and the README reference all follow the dataclass
+(:func:`settings_table_markdown` and :func:`key_row_markdown` render the README's parts;
+:func:`update_readme` rewrites them). Metadata keys read here:
 
 ``unit``
     SI unit in pint syntax (``"s"``, ``"kg/m^3"``); ``<unit>`` stands for the unit of the channel a
     limit belongs to (``"<unit>/s"``). A field with a unit is read as a quantity.
 ``doc``
-    One line: what the field means (and its default when that is computed).
+    One line: what the field means.
+``default_text``
+    What a ``None`` default becomes when it is computed (``"each body's radius"``).
 ``choices``
     The allowed values of a text field.
 ``kind``
@@ -37,13 +40,19 @@ Examples
 from __future__ import annotations
 
 import dataclasses
+import pathlib
 import typing
 from dataclasses import dataclass
 
-__all__ = ["Key", "field_keys", "channel_unit", "CHANNEL_UNIT"]
+__all__ = ["Key", "field_keys", "channel_unit", "CHANNEL_UNIT", "settings_table_markdown", "key_row_markdown",
+           "update_readme", "SETTINGS_TABLE_BEGIN", "SETTINGS_TABLE_END"]
 
 #: Placeholder in a unit for the unit of the channel a limit belongs to.
 CHANNEL_UNIT = "<unit>"
+
+#: Marker lines around the generated planner settings table in the README.
+SETTINGS_TABLE_BEGIN = "<!-- settings-table:begin -->"
+SETTINGS_TABLE_END = "<!-- settings-table:end -->"
 
 _KINDS = {"bool": "bool", "int": "int", "float": "number", "str": "str"}
 
@@ -70,6 +79,8 @@ class Key:
         Allowed values of a ``choice``.
     field : str, optional
         Name of the dataclass field this key sets (``None`` for a key of the file format only).
+    default_text : str
+        What a computed default (``default`` is ``None``) becomes, in words; empty if not given.
     """
 
     name: str
@@ -80,6 +91,7 @@ class Key:
     required: bool = False
     choices: tuple = ()
     field: str | None = None
+    default_text: str = ""
 
 
 def _kind(f):
@@ -133,7 +145,7 @@ def field_keys(cls, *, rename=None, skip=()):
         default, required = _default(f)
         meta = f.metadata
         out.append(Key(rename.get(f.name, f.name), _kind(f), meta.get("unit"), default, meta.get("doc", ""),
-                       required, tuple(meta.get("choices", ())), f.name))
+                       required, tuple(meta.get("choices", ())), f.name, meta.get("default_text", "")))
     return out
 
 
@@ -150,3 +162,173 @@ def channel_unit(unit, channel):
     if unit == CHANNEL_UNIT:
         return channel
     return unit.replace(CHANNEL_UNIT, f"({channel})")
+
+
+# -- the README's generated parts ----------------------------------------------------------------
+
+def _cell(text):
+    # A pipe in a meaning (|f| / |grad f|) would end the table cell.
+    return str(text).replace("|", "\\|")
+
+
+def _default_cell(key):
+    if key.required:
+        return "**required**"
+    if key.default_text:
+        return _cell(key.default_text)
+    v = key.default
+    if v is None:
+        return ""
+    if isinstance(v, bool):
+        return f"`{str(v).lower()}`"           # as a scenario file (YAML) spells it
+    if isinstance(v, float):
+        return f"`{v:g}`"
+    return f"`{v}`"
+
+
+def settings_table_markdown(cls, *, skip=()):
+    """The fields of dataclass ``cls`` as a Markdown table: setting, default, unit, meaning.
+
+    Every cell comes from the field (its default, or its ``default_text`` metadata when the default
+    is computed) and its metadata, so the README table cannot say other than the code.
+
+    Parameters
+    ----------
+    cls : type
+        A dataclass whose fields carry metadata (see the module docstring).
+    skip : sequence of str
+        Fields left out.
+
+    Returns
+    -------
+    str
+        The table, one line per field, ending in a newline.
+
+    Examples
+    --------
+    >>> from dataclasses import dataclass, field
+    >>> @dataclass
+    ... class Pump:
+    ...     rate: float | None = field(default=None, metadata={
+    ...         "unit": "m^3/s", "default_text": "from the tube", "doc": "Flow rate."})
+    ...     mode: str = field(default="push", metadata={"choices": ("push", "pull"), "doc": "Direction."})
+    >>> print(settings_table_markdown(Pump), end="")
+    | setting | default | unit | meaning |
+    |---|---|---|---|
+    | `rate` | from the tube | m^3/s | Flow rate. |
+    | `mode` | `push` |  | Direction. Values: `push`, `pull`. |
+    """
+    lines = ["| setting | default | unit | meaning |", "|---|---|---|---|"]
+    for k in field_keys(cls, skip=skip):
+        meaning = _cell(k.doc)
+        if k.choices:
+            meaning += " Values: " + ", ".join(f"`{c}`" for c in k.choices) + "."
+        lines.append(f"| `{k.name}` | {_default_cell(k)} | {k.unit or ''} | {meaning} |")
+    return "\n".join(lines) + "\n"
+
+
+def key_row_markdown(section, keys, *, fields_note=""):
+    """One row of the README's key table: the section and its keys, each with its unit or choices.
+
+    Parameters
+    ----------
+    section : str
+        The section as the table names it (``"planner"``).
+    keys : sequence of Key
+        Its keys; those of the file format only (``field`` is ``None``) come first.
+    fields_note : str
+        Words between those and the keys that set dataclass fields (``"any PlanSettings field"``).
+
+    Returns
+    -------
+    str
+        The row, without a newline.
+
+    Examples
+    --------
+    >>> keys = [Key("mode", "choice", choices=("a", "b")), Key("period", "quantity", "s", field="period"),
+    ...         Key("horizon", "int", field="horizon")]
+    >>> key_row_markdown("planner", keys, fields_note="any setting")
+    '| `planner` | `mode` (a \\\\| b) and any setting: `period` (s), `horizon` |'
+    """
+    def item(k):
+        extra = " \\| ".join(k.choices) if k.choices else (k.unit or "")
+        return f"`{k.name}`" + (f" ({extra})" if extra else "")
+
+    own = ", ".join(item(k) for k in keys if k.field is None)
+    of_fields = ", ".join(item(k) for k in keys if k.field is not None)
+    if of_fields and fields_note:
+        of_fields = f"{fields_note}: {of_fields}"
+    text = " and ".join(t for t in (own, of_fields) if t)
+    return f"| `{section}` | {text} |"
+
+
+def readme_parts():
+    """The README's generated parts: ``(planner settings table, {section: key-table row})``."""
+    # Imported here: the schema module builds its tables with this one.
+    from ..planning.settings import PlanSettings  # noqa: PLC0415
+    from .schema import SCHEMA  # noqa: PLC0415
+
+    table = settings_table_markdown(PlanSettings)
+    note = 'any `PlanSettings` field (see "Planner settings" above; `fieldplan schema` lists each with its unit and default)'
+    return table, {"planner": key_row_markdown("planner", SCHEMA["planner"], fields_note=note)}
+
+
+def refresh_readme(text, table, rows):
+    """``text`` with the settings table between its markers and each key-table row replaced.
+
+    Parameters
+    ----------
+    text : str
+        The README.
+    table : str
+        What goes between :data:`SETTINGS_TABLE_BEGIN` and :data:`SETTINGS_TABLE_END`.
+    rows : dict of str to str
+        Section -> its row; the line starting ``| `section` |`` is replaced.
+
+    Returns
+    -------
+    str
+
+    Raises
+    ------
+    ValueError
+        If a marker or a row is missing, or appears more than once.
+
+    Examples
+    --------
+    >>> text = "a\\n<!-- settings-table:begin -->\\nold\\n<!-- settings-table:end -->\\n| `x` | old |\\n"
+    >>> print(refresh_readme(text, "new\\n", {"x": "| `x` | new |"}), end="")
+    a
+    <!-- settings-table:begin -->
+    new
+    <!-- settings-table:end -->
+    | `x` | new |
+    """
+    for marker in (SETTINGS_TABLE_BEGIN, SETTINGS_TABLE_END):
+        if text.count(marker) != 1:
+            raise ValueError(f"the README must hold the line {marker!r} once, found it {text.count(marker)} times.")
+    head, rest = text.split(SETTINGS_TABLE_BEGIN + "\n", 1)
+    _, tail = rest.split(SETTINGS_TABLE_END, 1)
+    lines = (head + SETTINGS_TABLE_BEGIN + "\n" + table + SETTINGS_TABLE_END + tail).split("\n")
+    for section, row in rows.items():
+        at = [i for i, ln in enumerate(lines) if ln.startswith(f"| `{section}` |")]
+        if len(at) != 1:
+            raise ValueError(f"the README's key table must have one row for `{section}`, found {len(at)}.")
+        lines[at[0]] = row
+    return "\n".join(lines)
+
+
+def update_readme(path):
+    """Rewrite the generated parts of the README at ``path`` from the dataclasses; True if it changed.
+
+    Run after changing a planner setting's metadata::
+
+        python -c "import fieldplan.scenario.fields as f; f.update_readme('README.md')"
+    """
+    p = pathlib.Path(path)
+    old = p.read_text(encoding="utf-8")
+    new = refresh_readme(old, *readme_parts())
+    if new != old:
+        p.write_text(new, encoding="utf-8")
+    return new != old
