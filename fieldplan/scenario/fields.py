@@ -44,6 +44,8 @@ import pathlib
 import typing
 from dataclasses import dataclass
 
+from ..planning.settings import PlanSettings
+
 __all__ = ["Key", "field_keys", "channel_unit", "CHANNEL_UNIT", "settings_table_markdown", "key_row_markdown",
            "update_readme", "SETTINGS_TABLE_BEGIN", "SETTINGS_TABLE_END"]
 
@@ -265,8 +267,7 @@ def key_row_markdown(section, keys, *, fields_note=""):
 
 def readme_parts():
     """The README's generated parts: ``(planner settings table, {section: key-table row})``."""
-    # Imported here: the schema module builds its tables with this one.
-    from ..planning.settings import PlanSettings  # noqa: PLC0415
+    # deferred import: import cycle: fieldplan.scenario.schema imports this module to build its tables
     from .schema import SCHEMA  # noqa: PLC0415
 
     table = settings_table_markdown(PlanSettings)

@@ -174,7 +174,7 @@ def schema_reference():
         lines.append("| key | type | unit | default | meaning |")
         lines.append("|---|---|---|---|---|")
         for k in keys:
-            default = "**required**" if k.required else ("" if k.default is None else f"`{k.default}`")
+            default = "**required**" if k.required else (k.default_text or ("" if k.default is None else f"`{k.default}`"))
             kind = k.kind if not k.choices else " \\| ".join(k.choices)
             doc = k.doc.replace("|", "\\|")          # a pipe in a meaning (|f| / |grad f|) would end the cell
             lines.append(f"| `{k.name}` | {kind} | {k.unit or ''} | {default} | {doc} |")
