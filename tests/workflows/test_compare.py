@@ -117,7 +117,9 @@ def test_schema_lists_every_planner_default(capsys):
             continue        # a scenario sets it through goals.unlabelled, so the planner section omits it
         assert f"| `{name}` |" in section, name
     assert "| `assign_goals` |" not in section
-    assert "| `horizon` | int |  |  | Periods the program looks ahead (default: from" in section   # None: chosen
+    # A None default shows what it becomes (its default_text metadata).
+    assert "| `horizon` | int |  | 2 / trust_fraction, within 8 to 30 (step method: 1) | Periods the program looks ahead." \
+        in section
 
 
 def test_chart_is_relative_to_each_tolerance_and_has_no_whiskers_with_one_run():
