@@ -266,13 +266,19 @@ def key_row_markdown(section, keys, *, fields_note=""):
 
 
 def readme_parts():
-    """The README's generated parts: ``(planner settings table, {section: key-table row})``."""
+    """The README's generated parts: ``(planner settings table, {section: key-table row})``.
+
+    The rows are those of ``planner``, ``simulation`` and ``outputs``, whose keys are dataclass fields.
+    """
     # deferred import: import cycle: fieldplan.scenario.schema imports this module to build its tables
     from .schema import SCHEMA  # noqa: PLC0415
 
     table = settings_table_markdown(PlanSettings)
     note = 'any `PlanSettings` field (see "Planner settings" above; `fieldplan schema` lists each with its unit and default)'
-    return table, {"planner": key_row_markdown("planner", SCHEMA["planner"], fields_note=note)}
+    rows = {"planner": key_row_markdown("planner", SCHEMA["planner"], fields_note=note)}
+    # simulation and outputs are SimulationSettings / OutputSettings fields only: no format keys to set apart
+    rows.update({s: key_row_markdown(s, SCHEMA[s]) for s in ("simulation", "outputs")})
+    return table, rows
 
 
 def refresh_readme(text, table, rows):

@@ -9,7 +9,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..planning.settings import PlanSettings
-from .schema import PLOT_NAMES
+from ..plots.catalog import RUN_FIGURES
+
+#: Plots ``fieldplan run`` can write (the ``outputs.plots`` names).
+PLOT_NAMES = tuple(RUN_FIGURES)
 
 __all__ = ['SimulationSettings', 'OutputSettings', 'Scenario']
 
@@ -17,20 +20,34 @@ __all__ = ['SimulationSettings', 'OutputSettings', 'Scenario']
 # Settings objects
 # ----------------------------------------------------------------------------------------------
 
+def _doc(text, **more):
+    """Field metadata read by :func:`fieldplan.scenario.fields.field_keys` (the schema rows)."""
+    return dict(doc=text, **more)
+
+
 @dataclass
 class SimulationSettings:
-    """How trials are simulated (see the ``simulation`` section)."""
+    """How trials are simulated (see the ``simulation`` section).
 
-    trials: int = 1
-    seed: int = 0
-    brownian: bool = True
-    tracking_noise: float = 0.0
-    latency: float = 0.0
-    max_displacement: float | None = None
-    dt_max: float | None = None
-    contacts: bool = True
-    record_interval: float | None = None
-    required_success: float = 1.0
+    Each field's unit and meaning are in its metadata; the ``simulation`` rows of
+    :data:`fieldplan.scenario.SCHEMA` are generated from them.
+    """
+
+    trials: int = field(default=1, metadata=_doc("Simulated executions (0: plan and export only)."))
+    seed: int = field(default=0, metadata=_doc("Seed of trial k is seed + k (planner randomness uses seed)."))
+    brownian: bool = field(default=True, metadata=_doc("Thermal motion (Stokes-Einstein with the wall factor)."))
+    tracking_noise: float = field(default=0.0, metadata=_doc("Standard deviation of each observed coordinate.",
+                                                             unit="m"))
+    latency: float = field(default=0.0, metadata=_doc("Tracker delay (closed loop).", unit="s"))
+    max_displacement: float | None = field(default=None, metadata=_doc(
+        "Largest integration step displacement.", unit="m", default_text="a quarter of the smallest radius"))
+    dt_max: float | None = field(default=None, metadata=_doc("Longest integration step.", unit="s",
+                                                             default_text="no cap"))
+    contacts: bool = field(default=True, metadata=_doc("Resolve body-body and body-wall contacts."))
+    record_interval: float | None = field(default=None, metadata=_doc(
+        "Record trajectories at most this often.", unit="s", default_text="every integration step"))
+    required_success: float = field(default=1.0, metadata=_doc(
+        "Fraction of trials that must reach every goal for exit code 0."))
 
     def simulator_options(self):
         """Keyword arguments for :class:`fieldplan.Simulator` / :func:`fieldplan.rollout`."""
@@ -43,16 +60,20 @@ class SimulationSettings:
 
 @dataclass
 class OutputSettings:
-    """What ``fieldplan run`` writes (see the ``outputs`` section)."""
+    """What ``fieldplan run`` writes (see the ``outputs`` section; rows generated from the metadata)."""
 
-    schedule: bool = True
-    resample_rate: float | None = None
-    trajectories: bool = True
-    plots: tuple = PLOT_NAMES
-    animation: bool = False
-    animation_frames: int = 48
-    field_backdrop: bool = True
-    dpi: int = 120
+    schedule: bool = field(default=True, metadata=_doc("schedule.csv and schedule.json."))
+    resample_rate: float | None = field(default=None, metadata=_doc(
+        "Also write schedule_resampled.csv sampled at this rate.", unit="Hz", default_text="not written"))
+    trajectories: bool = field(default=True, metadata=_doc("trajectories.csv (predicted and every trial)."))
+    plots: tuple = field(default=PLOT_NAMES, metadata=_doc(
+        "true, false, or a list of " + ", ".join(f"`{p}`" for p in PLOT_NAMES) + ".", kind="any",
+        default_text="`true` (every plot)"))
+    animation: bool = field(default=False, metadata=_doc("animation.gif of the first trial."))
+    animation_frames: int = field(default=48, metadata=_doc("Frames of the animation (evenly spaced in time)."))
+    field_backdrop: bool = field(default=True, metadata=_doc(
+        "Shade the workspace plot by the fastest available speed."))
+    dpi: int = field(default=120, metadata=_doc("Resolution of the PNG plots."))
 
 
 @dataclass

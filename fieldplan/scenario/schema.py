@@ -2,8 +2,9 @@
 
 The sections that set a dataclass - ``bodies[]`` (:class:`~fieldplan.world.body.Body`), ``bodies[].shell``,
 ``limits`` (:class:`~fieldplan.contract.schedule.HardwareLimits`), ``limits.channels.<name>``
-(:class:`~fieldplan.contract.schedule.ChannelLimit`) and ``planner``
-(:class:`~fieldplan.planning.settings.PlanSettings`) - take their keys from the fields' metadata
+(:class:`~fieldplan.contract.schedule.ChannelLimit`), ``planner``
+(:class:`~fieldplan.planning.settings.PlanSettings`), ``simulation`` and ``outputs``
+(:class:`~fieldplan.scenario.model.SimulationSettings`, :class:`~fieldplan.scenario.model.OutputSettings`) - take their keys from the fields' metadata
 (:func:`~fieldplan.scenario.fields.field_keys`): a new field is written once, in its dataclass.
 """
 
@@ -11,9 +12,9 @@ from __future__ import annotations
 
 from ..contract.schedule import ChannelLimit, HardwareLimits
 from ..planning.settings import PlanSettings
-from ..plots.catalog import RUN_FIGURES
 from ..world.body import Body, Shell
 from .fields import Key, field_keys
+from .model import PLOT_NAMES, OutputSettings, SimulationSettings
 
 __all__ = ['MISSING', 'BAD', 'NOT_IMPORTED', 'Key', 'SHAPE_DOC', 'SCHEMA', 'VARIANT_SECTIONS', 'PLOT_NAMES',
            'schema_reference']
@@ -131,29 +132,9 @@ SCHEMA = {
     "planner": [_k("mode", "choice", None, "open_loop", "open_loop: plan once, play the schedule in every trial; "
                                                         "closed_loop: re-plan from observed positions each period.",
                    choices=("open_loop", "closed_loop"))] + field_keys(PlanSettings, skip=("assign_goals",)),
-    "simulation": [
-        _k("trials", "int", None, 1, "Simulated executions (0: plan and export only)."),
-        _k("seed", "int", None, 0, "Seed of trial k is seed + k (planner randomness uses seed)."),
-        _k("brownian", "bool", None, True, "Thermal motion (Stokes-Einstein with the wall factor)."),
-        _k("tracking_noise", "quantity", "m", 0.0, "Standard deviation of each observed coordinate."),
-        _k("latency", "quantity", "s", 0.0, "Tracker delay (closed loop)."),
-        _k("max_displacement", "quantity", "m", None, "Largest integration step displacement."),
-        _k("dt_max", "quantity", "s", None, "Longest integration step."),
-        _k("contacts", "bool", None, True, "Resolve body-body and body-wall contacts."),
-        _k("record_interval", "quantity", "s", None, "Record trajectories at most this often."),
-        _k("required_success", "number", None, 1.0, "Fraction of trials that must reach every goal for "
-                                                     "exit code 0."),
-    ],
-    "outputs": [
-        _k("schedule", "bool", None, True, "schedule.csv and schedule.json."),
-        _k("resample_rate", "quantity", "Hz", None, "Also write schedule_resampled.csv sampled at this rate."),
-        _k("trajectories", "bool", None, True, "trajectories.csv (predicted and every trial)."),
-        _k("plots", "any", None, True, "true, false, or a list of `workspace`, `timeline`, `inputs`."),
-        _k("animation", "bool", None, False, "animation.gif of the first trial."),
-        _k("animation_frames", "int", None, 48, "Frames of the animation (evenly spaced in time)."),
-        _k("field_backdrop", "bool", None, True, "Shade the workspace plot by the fastest available speed."),
-        _k("dpi", "int", None, 120, "Resolution of the PNG plots."),
-    ],
+    # SimulationSettings and OutputSettings fields (range checks are in sections.read_simulation/_outputs).
+    "simulation": field_keys(SimulationSettings),
+    "outputs": field_keys(OutputSettings),
     "variants[]": [
         _k("name", "str", required=True, doc="Label in the comparison table."),
         _k("<section>", "any", doc="Any of workspace, medium, bodies, starts, goals, actuator, truth, limits, "
@@ -162,7 +143,6 @@ SCHEMA = {
 }
 
 VARIANT_SECTIONS = ("workspace", "medium", "bodies", "starts", "goals", "actuator", "truth", "limits", "planner")
-PLOT_NAMES = tuple(RUN_FIGURES)
 
 
 def schema_reference():

@@ -8,9 +8,11 @@ from dataclasses import dataclass, field
 import pytest
 
 from fieldplan.planning.settings import PlanSettings
+from fieldplan.scenario import model
 from fieldplan.scenario.fields import (CHANNEL_UNIT, SETTINGS_TABLE_BEGIN, SETTINGS_TABLE_END, Key, channel_unit,
                                        field_keys, key_row_markdown, readme_parts, refresh_readme,
                                        settings_table_markdown, update_readme)
+from fieldplan.scenario.schema import SCHEMA
 
 
 @dataclass
@@ -130,3 +132,14 @@ def test_update_readme_rewrites_a_stale_copy_and_leaves_a_current_one(tmp_path):
     path.write_text(stale, encoding="utf-8")
     assert update_readme(path) is True and path.read_text(encoding="utf-8") == current
     assert update_readme(path) is False
+
+
+@pytest.mark.parametrize("section,cls", [("simulation", "SimulationSettings"), ("outputs", "OutputSettings")])
+def test_simulation_and_output_keys_are_their_dataclass_fields(section, cls):
+    fields = dataclasses.fields(getattr(model, cls))
+    keys = SCHEMA[section]
+    assert [k.name for k in keys] == [f.name for f in fields]
+    for k, f in zip(keys, fields):
+        assert k.doc == f.metadata["doc"] and k.unit == f.metadata.get("unit")
+        if f.metadata.get("default_text") is None and f.name != "plots":
+            assert k.default == f.default          # the schema shows the dataclass default itself
