@@ -345,6 +345,19 @@ class Schedule:
         return self._labels
 
     # -- construction ---------------------------------------------------------------------------
+    def with_meta(self, **items):
+        """A copy whose :attr:`meta` also holds ``items``; ``self`` and its meta are left as they are.
+
+        Examples
+        --------
+        >>> from fieldplan.contract.actuator import Channel
+        >>> s = Schedule([Channel("I1", "A", -1.0, 1.0)], [0.0], [1.0], [[0.5]], meta={"a": 1})
+        >>> s.with_meta(origin="trial 1").meta, s.meta
+        ({'a': 1, 'origin': 'trial 1'}, {'a': 1})
+        """
+        return Schedule(self._channels, self._starts, self._durations, self._values, self._labels,
+                        {**self.meta, **items})
+
     @classmethod
     def empty(cls, channels):
         return cls(channels, [], [], np.zeros((0, len(channels))))

@@ -256,8 +256,10 @@ def run_scenario(scenario, *, schedule=None, trials=None, seed=None, progress=Fa
             if k == 0:
                 run.schedule = _quantised(sched, sc.limits)
                 if run.schedule is not None:
-                    run.schedule.meta["origin"] = (f"inputs played in trial 1 of the closed loop (seed {seed0}); "
-                                                   "later trials re-planned and played different inputs")
+                    # a copy: quantising may return trial 1's own schedule, whose meta must not change
+                    run.schedule = run.schedule.with_meta(
+                        origin=(f"inputs played in trial 1 of the closed loop (seed {seed0}); "
+                                "later trials re-planned and played different inputs"))
                 run.goals = g
                 run.step_times = list(live.step_times)
                 run.routes = live.routes

@@ -164,8 +164,13 @@ def test_input_power_is_a_fraction_of_full_scale():
         == pytest.approx(5e-6)
 
 
-def test_closed_loop_schedule_is_said_to_be_trial_ones(tmp_path):
+@pytest.mark.parametrize("already_quantised", [False, True])
+def test_closed_loop_schedule_is_said_to_be_trial_ones(tmp_path, monkeypatch, already_quantised):
+    from fieldplan.workflows import compare
     from fieldplan.workflows.compare import run_scenario
+
+    if already_quantised:          # quantising then returns trial 1's own schedule object
+        monkeypatch.setattr(compare, "_quantised", lambda schedule, limits: schedule)
 
     text = BASE.replace("planner:\n  tolerance: 20 um", "planner:\n  mode: closed_loop\n  tolerance: 20 um\n"
                                                         "  max_steps: 30")
@@ -174,6 +179,8 @@ def test_closed_loop_schedule_is_said_to_be_trial_ones(tmp_path):
     assert run.schedule is not None
     assert "trial 1" in run.schedule_origin and "trial 1" in run.message
     assert "trial 1" in run.schedule.meta["origin"]
+    # the trial keeps the schedule it played, its meta untouched by the export note
+    assert run.trials[0].schedule is not run.schedule and "origin" not in run.trials[0].schedule.meta
 
 
 def test_miss_message_uses_si_prefixes():
