@@ -3,7 +3,8 @@
 :func:`check_actuator` is the one place that says what an actuator must do. Every built-in
 actuator runs it in ``tests/contract/test_actuator_contract.py``; a user's plug-in runs it in theirs::
 
-    from .testing import check_actuator
+    import fieldplan
+    from fieldplan.contract.testing import check_actuator
     check_actuator(MyActuator(...), bodies=[my_bead], medium=fieldplan.water())
 """
 
