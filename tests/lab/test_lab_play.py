@@ -138,7 +138,11 @@ def test_a_signal_to_a_running_play_leaves_the_instrument_idle(rig, sig):
     # Unbuffered: the "playing" line must reach us while it plays, not when it exits (a buffered pipe
     # let the whole play finish before the signal was sent, on a loaded machine).
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""), PYTHONUNBUFFERED="1")
-    proc = subprocess.Popen([sys.executable, "-c", "import sys; from fieldplan.cli import main; sys.exit(main())",
+    # The child starts with Python's own Ctrl-C handler, as in a terminal: run from a background job
+    # (nohup, `&` in a script) it would inherit an ignored SIGINT, and rightly keep playing.
+    code = ("import signal, sys; signal.signal(signal.SIGINT, signal.default_int_handler); "
+            "from fieldplan.cli import main; sys.exit(main())")
+    proc = subprocess.Popen([sys.executable, "-c", code,
                              "play", str(sched), "--driver", rig["url"], "--profile", rig["profile"], "--yes",
                              "--log", str(log)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
     try:
