@@ -3,8 +3,9 @@
 The sections that set a dataclass - ``bodies[]`` (:class:`~fieldplan.world.body.Body`), ``bodies[].shell``,
 ``limits`` (:class:`~fieldplan.contract.schedule.HardwareLimits`), ``limits.channels.<name>``
 (:class:`~fieldplan.contract.schedule.ChannelLimit`), ``planner``
-(:class:`~fieldplan.planning.settings.PlanSettings`), ``simulation`` and ``outputs``
-(:class:`~fieldplan.scenario.model.SimulationSettings`, :class:`~fieldplan.scenario.model.OutputSettings`) - take their keys from the fields' metadata
+(:class:`~fieldplan.planning.settings.PlanSettings`), ``simulation``
+(:class:`~fieldplan.scenario.model.SimulationSettings`) and ``outputs``
+(:class:`~fieldplan.scenario.model.OutputSettings`) - take their keys from the fields' metadata
 (:func:`~fieldplan.scenario.fields.field_keys`): a new field is written once, in its dataclass.
 """
 
@@ -132,7 +133,7 @@ SCHEMA = {
     "planner": [_k("mode", "choice", None, "open_loop", "open_loop: plan once, play the schedule in every trial; "
                                                         "closed_loop: re-plan from observed positions each period.",
                    choices=("open_loop", "closed_loop"))] + field_keys(PlanSettings, skip=("assign_goals",)),
-    # SimulationSettings and OutputSettings fields (range checks are in sections.read_simulation/_outputs).
+    # SimulationSettings and OutputSettings fields (range checks: sections.read_simulation, read_outputs).
     "simulation": field_keys(SimulationSettings),
     "outputs": field_keys(OutputSettings),
     "variants[]": [
