@@ -20,11 +20,6 @@ __all__ = ['SimulationSettings', 'OutputSettings', 'Scenario']
 # Settings objects
 # ----------------------------------------------------------------------------------------------
 
-def _doc(text, **more):
-    """Field metadata read by :func:`fieldplan.scenario.fields.field_keys` (the schema rows)."""
-    return dict(doc=text, **more)
-
-
 @dataclass
 class SimulationSettings:
     """How trials are simulated (see the ``simulation`` section).
@@ -33,21 +28,22 @@ class SimulationSettings:
     :data:`fieldplan.scenario.SCHEMA` are generated from them.
     """
 
-    trials: int = field(default=1, metadata=_doc("Simulated executions (0: plan and export only)."))
-    seed: int = field(default=0, metadata=_doc("Seed of trial k is seed + k (planner randomness uses seed)."))
-    brownian: bool = field(default=True, metadata=_doc("Thermal motion (Stokes-Einstein with the wall factor)."))
-    tracking_noise: float = field(default=0.0, metadata=_doc("Standard deviation of each observed coordinate.",
-                                                             unit="m"))
-    latency: float = field(default=0.0, metadata=_doc("Tracker delay (closed loop).", unit="s"))
-    max_displacement: float | None = field(default=None, metadata=_doc(
-        "Largest integration step displacement.", unit="m", default_text="a quarter of the smallest radius"))
-    dt_max: float | None = field(default=None, metadata=_doc("Longest integration step.", unit="s",
-                                                             default_text="no cap"))
-    contacts: bool = field(default=True, metadata=_doc("Resolve body-body and body-wall contacts."))
-    record_interval: float | None = field(default=None, metadata=_doc(
-        "Record trajectories at most this often.", unit="s", default_text="every integration step"))
-    required_success: float = field(default=1.0, metadata=_doc(
-        "Fraction of trials that must reach every goal for exit code 0."))
+    trials: int = field(default=1, metadata={"doc": "Simulated executions (0: plan and export only)."})
+    seed: int = field(default=0, metadata={"doc": "Seed of trial k is seed + k (planner randomness uses seed)."})
+    brownian: bool = field(default=True, metadata={"doc": "Thermal motion (Stokes-Einstein with the wall factor)."})
+    tracking_noise: float = field(default=0.0, metadata={
+        "doc": "Standard deviation of each observed coordinate.", "unit": "m"})
+    latency: float = field(default=0.0, metadata={"doc": "Tracker delay (closed loop).", "unit": "s"})
+    max_displacement: float | None = field(default=None, metadata={
+        "doc": "Largest integration step displacement.", "unit": "m",
+        "default_text": "a quarter of the smallest radius"})
+    dt_max: float | None = field(default=None, metadata={
+        "doc": "Longest integration step.", "unit": "s", "default_text": "no cap"})
+    contacts: bool = field(default=True, metadata={"doc": "Resolve body-body and body-wall contacts."})
+    record_interval: float | None = field(default=None, metadata={
+        "doc": "Record trajectories at most this often.", "unit": "s", "default_text": "every integration step"})
+    required_success: float = field(default=1.0, metadata={
+        "doc": "Fraction of trials that must reach every goal for exit code 0."})
 
     def simulator_options(self):
         """Keyword arguments for :class:`fieldplan.Simulator` / :func:`fieldplan.rollout`."""
@@ -62,18 +58,19 @@ class SimulationSettings:
 class OutputSettings:
     """What ``fieldplan run`` writes (see the ``outputs`` section; rows generated from the metadata)."""
 
-    schedule: bool = field(default=True, metadata=_doc("schedule.csv and schedule.json."))
-    resample_rate: float | None = field(default=None, metadata=_doc(
-        "Also write schedule_resampled.csv sampled at this rate.", unit="Hz", default_text="not written"))
-    trajectories: bool = field(default=True, metadata=_doc("trajectories.csv (predicted and every trial)."))
-    plots: tuple = field(default=PLOT_NAMES, metadata=_doc(
-        "true, false, or a list of " + ", ".join(f"`{p}`" for p in PLOT_NAMES) + ".", kind="any",
-        default_text="`true` (every plot)"))
-    animation: bool = field(default=False, metadata=_doc("animation.gif of the first trial."))
-    animation_frames: int = field(default=48, metadata=_doc("Frames of the animation (evenly spaced in time)."))
-    field_backdrop: bool = field(default=True, metadata=_doc(
-        "Shade the workspace plot by the fastest available speed."))
-    dpi: int = field(default=120, metadata=_doc("Resolution of the PNG plots."))
+    schedule: bool = field(default=True, metadata={"doc": "schedule.csv and schedule.json."})
+    resample_rate: float | None = field(default=None, metadata={
+        "doc": "Also write schedule_resampled.csv sampled at this rate.", "unit": "Hz",
+        "default_text": "not written"})
+    trajectories: bool = field(default=True, metadata={"doc": "trajectories.csv (predicted and every trial)."})
+    plots: tuple = field(default=PLOT_NAMES, metadata={
+        "doc": "true, false, or a list of " + ", ".join(f"`{p}`" for p in PLOT_NAMES) + ".", "kind": "any",
+        "default_text": "`true` (every plot)"})
+    animation: bool = field(default=False, metadata={"doc": "animation.gif of the first trial."})
+    animation_frames: int = field(default=48, metadata={"doc": "Frames of the animation (evenly spaced in time)."})
+    field_backdrop: bool = field(default=True, metadata={
+        "doc": "Shade the workspace plot by the fastest available speed."})
+    dpi: int = field(default=120, metadata={"doc": "Resolution of the PNG plots."})
 
 
 @dataclass
